@@ -1,0 +1,211 @@
+"""The optimisation problem behind a design: which gains are free, in what
+units the solver sees them, and the objective with its exact gradient.
+
+Gains are scaled so that the solver works in natural units: a sender gain is
+measured in units of its channel's noise (so scaling a link's noise by ``c``
+and its price by ``1/c`` gives the solver the very same problem: model.md's
+scale law), a receiver gain in the inverse units, and the objective relative
+to the weighted prior error. Flattening is private to this module and the
+solver; everything else sees named :class:`~hierarchy.gains.Gains`.
+"""
+
+from __future__ import annotations
+
+import numpy as np
+import scipy.linalg as sla
+
+from .closedloop import Layout
+from .evaluate import cost_and_gradient
+from .gains import Gains, gain_shapes, pinned_gains
+from .model import PREDICTION, Spec
+
+
+def _rms(cov: np.ndarray) -> float:
+    k = cov.shape[0]
+    return float(np.sqrt(max(np.trace(cov), 0.0) / k)) if k else 0.0
+
+
+class Problem:
+    """Free gains of ``spec``, their scaling, and ``J(theta)`` with its gradient.
+
+    Parameters
+    ----------
+    spec : Spec
+    prices : array_like, optional
+        Per-link prices (default: the spec's). The budget form changes these.
+
+    Examples
+    --------
+    >>> prob = Problem(spec)                  # doctest: +SKIP
+    >>> J, g = prob.value_and_grad(prob.pack(gains))   # doctest: +SKIP
+    """
+
+    def __init__(self, spec: Spec, prices=None):
+        self.spec = spec
+        self.layout = Layout(spec)
+        self.prices = self.layout.price.copy() if prices is None else np.asarray(prices, float).copy()
+        self.pins = pinned_gains(spec)
+        world = spec.world
+        self.world_cov = sla.solve_discrete_lyapunov(world.A, world.Q)
+        self.node_scale = self._node_scales()
+        self.link_scale = {}
+        for l in spec.links:
+            noise = _rms(l.noise)
+            self.link_scale[l.id] = noise if noise > 0 else self.node_scale[l.source]
+        shapes = gain_shapes(spec)
+        self.blocks = []  # (kind, owner, name, shape, factor, offset)
+        offset = 0
+        for kind in ("areas", "links"):
+            for owner, blocks in shapes[kind].items():
+                for name, shape in blocks.items():
+                    if self.pins.get(owner, name) is not None:
+                        continue
+                    factor = self._factor(owner, name)
+                    self.blocks.append((kind, owner, name, shape, factor, offset))
+                    offset += shape[0] * shape[1]
+        self.size = offset
+        prior = sum(a.weight * float(np.trace(world.selector(a.tracks) @ self.world_cov @ world.selector(a.tracks).T))
+                    for a in spec.areas if a.has_target)
+        self.reference = prior if prior > 0 else 1.0
+        self.evaluations = 0
+
+    def _node_scales(self) -> dict:
+        world, cov = self.spec.world, self.world_cov
+        out = {}
+        for s in self.spec.sensors:
+            C = s.C(world)
+            out[s.name] = _rms(C @ cov @ C.T + s.noise) or 1.0
+        for a in self.spec.areas:
+            if a.has_target:
+                T = world.selector(a.tracks)
+                out[a.name] = _rms(T @ cov @ T.T) or 1.0
+            else:
+                out[a.name] = 1.0
+        return out
+
+    def _factor(self, owner: str, name: str) -> float:
+        if name == "M":
+            return 1.0
+        link = self.spec.link(owner)
+        sigma = self.link_scale[owner]
+        if name == "K":
+            return self.node_scale[link.target] / sigma
+        if name == "G" or name == "S":
+            return sigma / self.node_scale[link.source]
+        pair = f"{link.target}->{link.source}"  # name == "P"
+        return sigma / self.link_scale[pair]
+
+    # -- flattening (private to the solver) --------------------------------
+    def unpack(self, theta: np.ndarray) -> Gains:
+        """Gains (pins included) for the solver's vector ``theta``."""
+        g = self.pins.copy()
+        for kind, owner, name, shape, factor, off in self.blocks:
+            n = shape[0] * shape[1]
+            getattr(g, kind).setdefault(owner, {})[name] = factor * theta[off:off + n].reshape(shape)
+        return g
+
+    def pack(self, gains: Gains) -> np.ndarray:
+        theta = np.zeros(self.size)
+        for kind, owner, name, shape, factor, off in self.blocks:
+            n = shape[0] * shape[1]
+            theta[off:off + n] = np.asarray(getattr(gains, kind)[owner][name]).ravel() / factor
+        return theta
+
+    def value_and_grad(self, theta: np.ndarray):
+        """Relative objective ``J / reference`` and its gradient in solver units
+        (``inf, None`` when the closed loop is unstable)."""
+        self.evaluations += 1
+        J, grad, _ = cost_and_gradient(self.layout, self.unpack(theta), self.prices)
+        if grad is None:
+            return float("inf"), None
+        out = np.empty(self.size)
+        for kind, owner, name, shape, factor, off in self.blocks:
+            n = shape[0] * shape[1]
+            out[off:off + n] = factor * getattr(grad, kind)[owner][name].ravel()
+        return J / self.reference, out / self.reference
+
+    def block_slices(self, owner: str) -> list:
+        """Slices of ``theta`` that belong to one link or area."""
+        return [slice(off, off + shape[0] * shape[1])
+                for kind, o, name, shape, factor, off in self.blocks if o == owner]
+
+    def sender_slices(self, link_id: str) -> list:
+        return [slice(off, off + shape[0] * shape[1])
+                for kind, o, name, shape, factor, off in self.blocks if o == link_id and name in "GSP"]
+
+    def sender_block(self, link_id: str):
+        """``(slice, shape)`` of the free gain that forms a link's signal from
+        its source (``G`` or ``S``), or ``None`` if it is pinned."""
+        for kind, o, name, shape, factor, off in self.blocks:
+            if o == link_id and name in "GS":
+                return slice(off, off + shape[0] * shape[1]), shape
+        return None
+
+    def receiver_slices(self, link_id: str) -> list:
+        return [slice(off, off + shape[0] * shape[1])
+                for kind, o, name, shape, factor, off in self.blocks if o == link_id and name == "K"]
+
+    # -- starting points ----------------------------------------------------
+    def informed_start(self) -> Gains:
+        """A stable, non-zero start that mimics a local Kalman-like circuit:
+        each area carries its target's dynamics, predictions send what the
+        receiver should see, residuals pass the difference with a moderate gain."""
+        spec, world = self.spec, self.spec.world
+        A = world.A
+        g = Gains()
+        for a in spec.areas:
+            M = np.zeros((a.dim, a.dim))
+            if a.has_target:
+                T = world.selector(a.tracks)
+                k = T.shape[0]
+                M[:k, :k] = 0.9 * (T @ A @ T.T)
+            g.areas[a.name] = {"M": M}
+        for l in spec.links:
+            shapes = gain_shapes(spec)["links"][l.id]
+            blocks = {}
+            for name, shape in shapes.items():
+                blocks[name] = _eye(shape)
+            if l.kind == PREDICTION:
+                src = spec.area(l.source)
+                G = np.zeros(shapes["G"])
+                if src.has_target and spec.is_sensor(l.target):
+                    T = world.selector(src.tracks)
+                    CT = spec.sensor(l.target).C(world) @ T.T
+                    r, c = min(G.shape[0], CT.shape[0]), min(G.shape[1], CT.shape[1])
+                    G[:r, :c] = CT[:r, :c]
+                else:
+                    G = _eye(shapes["G"])
+                blocks["G"] = G
+            if "K" in blocks:
+                blocks["K"] = 0.5 * blocks["K"] * (1.0 if l.kind != PREDICTION else 0.2)
+            g.links[l.id] = blocks
+        # Shrink until the loop is comfortably stable.
+        from .closedloop import assemble
+        from .evaluate import loop_radius
+
+        for _ in range(40):
+            full = self.unpack(self.pack(g)) if self.size else self.pins
+            if loop_radius(assemble(self.layout, full)) < 0.95:
+                break
+            for blocks in g.links.values():
+                if "K" in blocks:
+                    blocks["K"] *= 0.7
+            for blocks in g.areas.values():
+                blocks["M"] *= 0.9
+        return g
+
+    def random_start(self, rng: np.random.Generator, scale: float = 0.3) -> np.ndarray:
+        """A random start in solver units, shrunk until the loop is stable."""
+        from .closedloop import assemble
+        from .evaluate import loop_radius
+
+        theta = scale * rng.standard_normal(self.size) / np.sqrt(3.0)
+        for _ in range(60):
+            if loop_radius(assemble(self.layout, self.unpack(theta))) < 0.95:
+                return theta
+            theta *= 0.7
+        return theta
+
+
+def _eye(shape) -> np.ndarray:
+    return np.eye(*shape)
