@@ -1,0 +1,1499 @@
+"""Read a circuit spec (YAML, version 1) into the objects of :mod:`hierarchy.model`.
+
+One key table per section of the file lists its keys: whether each is required,
+its type, its default and a one-line description. The parser checks the file
+against these tables, and :func:`spec_schema` turns the same tables into a JSON
+Schema, so the two cannot drift apart. Run ``python -m hierarchy.spec
+--write-schema`` to refresh the shipped ``spec-v1.schema.json``.
+
+Every problem is raised as :class:`hierarchy.errors.SpecError` with the place in
+the file (``links[2] (low->high).noise``), the line where known, and a fix.
+"""
+
+from __future__ import annotations
+
+import argparse
+import difflib
+import json
+import math
+import re
+import sys
+from dataclasses import dataclass, replace
+from pathlib import Path
+
+import numpy as np
+import yaml
+
+from hierarchy.errors import SpecError
+from hierarchy.io import atomic_write_text
+from hierarchy.model import (
+    LINK_KINDS,
+    PREDICTION,
+    RESIDUAL,
+    Area,
+    Budget,
+    Link,
+    Sensor,
+    Spec,
+    StateBlock,
+    World,
+    frozen_array,
+    frozen_map,
+)
+
+SPEC_VERSION = 1
+SCHEMA_PATH = Path(__file__).with_name("spec-v1.schema.json")
+
+#: Largest accepted document, in characters (bytes for a file).
+MAX_DOCUMENT = 5_000_000
+#: Largest number of YAML nodes after aliases are expanded (each use counts).
+MAX_NODES = 1_000_000
+#: Limit on the world's total size, on the sum of sensor, area and link sizes.
+MAX_TOTAL_DIM = 5000
+MAX_LAG = 50
+
+# A name appears inside places (``areas.NAME.lag``) and link ids (``A->B``), so
+# it must not contain the characters that build those.
+_NAME_PATTERN = r"^(?!\s*$)(?![\s\S]*->)[^\[\].]+$"
+_MATRIX_WORDS = ("identity", "zero")
+
+
+# --------------------------------------------------------------------------
+# Positions: a value from the file together with its place and line
+# --------------------------------------------------------------------------
+
+
+@dataclass(frozen=True)
+class _At:
+    """A value read from the file, with its place in the spec and its line."""
+
+    value: object
+    place: str
+    line: int | None = None
+
+    def fail(self, message: str, fix: str):
+        raise SpecError(message, place=self.place, fix=fix, line=self.line)
+
+
+def _join(place: str, key) -> str:
+    return f"{place}.{key}" if place else str(key)
+
+
+def _child(at: _At, key) -> _At:
+    """The value under ``key`` of the mapping at ``at``; its line is the key's."""
+    lines = getattr(at.value, "key_lines", {})
+    return _At(at.value[key], _join(at.place, key), lines.get(key, at.line))
+
+
+def _items(at: _At) -> list[_At]:
+    lines = getattr(at.value, "item_lines", ())
+    return [
+        _At(v, f"{at.place}[{i}]", lines[i] if i < len(lines) else at.line)
+        for i, v in enumerate(at.value)
+    ]
+
+
+def _describe(value) -> str:
+    """Say in words what a YAML value is, for error messages."""
+    if value is None:
+        return "nothing"
+    if isinstance(value, bool):
+        return f"the boolean {str(value).lower()}"
+    if isinstance(value, (int, float)):
+        return f"the number {value}"
+    if isinstance(value, str):
+        return f"the text '{value}'"
+    if isinstance(value, dict):
+        return "a mapping"
+    if isinstance(value, list):
+        return "a list"
+    return f"a {type(value).__name__}"
+
+
+def _suggest(word, known) -> str:
+    """A fix sentence pointing at the nearest known word, or listing them all."""
+    known = [str(k) for k in known]
+    close = difflib.get_close_matches(str(word), known, n=1)
+    listing = ", ".join(known) if known else "(none)"
+    if close:
+        return f"did you mean `{close[0]}`? (known here: {listing})"
+    return f"use one of: {listing}"
+
+
+def _plural(n: int, word: str) -> str:
+    return f"{n} {word}" if n == 1 else f"{n} {word}s"
+
+
+# --------------------------------------------------------------------------
+# YAML loading: safe, with line numbers, duplicate keys and bombs refused
+# --------------------------------------------------------------------------
+
+
+class _LineDict(dict):
+    """A YAML mapping that remembers its line and the line of each key."""
+
+
+class _LineList(list):
+    """A YAML sequence that remembers its line and the line of each item."""
+
+
+class _SpecLoader(yaml.SafeLoader):
+    """``yaml.SafeLoader`` that builds line-aware containers.
+
+    It also reads ``1e-3`` as a number (as YAML 1.2 and editors do); YAML 1.1
+    would silently read it as text.
+    """
+
+
+def _node_line(node) -> int:
+    return node.start_mark.line + 1
+
+
+def _construct_mapping(loader, node):
+    loader.flatten_mapping(node)  # YAML merge keys (`<<: *base`)
+    data = _LineDict()
+    data.line = _node_line(node)
+    data.key_lines = {}
+    for key_node, value_node in node.value:
+        key = loader.construct_object(key_node, deep=True)
+        data[key] = loader.construct_object(value_node, deep=True)
+        data.key_lines[key] = _node_line(key_node)
+    return data
+
+
+def _construct_sequence(loader, node):
+    data = _LineList(loader.construct_object(n, deep=True) for n in node.value)
+    data.line = _node_line(node)
+    data.item_lines = [_node_line(n) for n in node.value]
+    return data
+
+
+_SpecLoader.add_constructor("tag:yaml.org,2002:map", _construct_mapping)
+_SpecLoader.add_constructor("tag:yaml.org,2002:seq", _construct_sequence)
+_SpecLoader.add_implicit_resolver(
+    "tag:yaml.org,2002:float",
+    re.compile(r"^[-+]?[0-9][0-9_]*(?:\.[0-9_]*)?[eE][-+]?[0-9]+$"),
+    list("-+0123456789"),
+)
+
+
+def _check_keys(node, place: str, loader) -> None:
+    """Refuse non-scalar keys and keys written twice in one mapping."""
+    seen = {}
+    for key_node, _ in node.value:
+        if key_node.tag == "tag:yaml.org,2002:merge":
+            continue
+        if not isinstance(key_node, yaml.ScalarNode):
+            raise SpecError(
+                "a key must be a plain word, not a list or a mapping",
+                place=place or "top level", line=_node_line(key_node),
+                fix="write keys as simple words, e.g. `noise: 0.1`")
+        key = loader.construct_object(key_node)
+        if key in seen:
+            raise SpecError(
+                f"the key `{key}` is written twice in the same mapping "
+                f"(first on line {seen[key]})",
+                place=_join(place, key), line=_node_line(key_node),
+                fix="keep only one of them")
+        seen[key] = _node_line(key_node)
+
+
+def _check_tree(root, loader) -> None:
+    """Check the composed YAML graph before any Python object is built.
+
+    Aliases share nodes, so a small file can stand for a huge tree (the
+    "billion laughs" attack). Sizes are counted with aliases expanded but each
+    shared node is visited once, so this check is fast even on a bomb.
+    """
+    sizes, open_nodes = {}, set()
+
+    def size(node, place):
+        if id(node) in sizes:
+            return sizes[id(node)]
+        if id(node) in open_nodes:
+            raise SpecError("an alias refers to a node that contains it",
+                            place=place or "top level", line=_node_line(node),
+                            fix="remove the self-referencing alias (`*name` "
+                                "inside the node marked `&name`)")
+        open_nodes.add(id(node))
+        total = 1
+        if isinstance(node, yaml.MappingNode):
+            _check_keys(node, place, loader)
+            for key_node, value_node in node.value:
+                total += size(value_node, _join(place, key_node.value)) + 1
+        elif isinstance(node, yaml.SequenceNode):
+            for i, item in enumerate(node.value):
+                total += size(item, f"{place}[{i}]")
+        if total > MAX_NODES:
+            raise SpecError(
+                f"the document is too large: with its aliases expanded it has "
+                f"more than {MAX_NODES:,} YAML nodes",
+                place=place or "top level", line=_node_line(node),
+                fix="write the spec out without deeply nested aliases")
+        open_nodes.discard(id(node))
+        sizes[id(node)] = total
+        return total
+
+    size(root, "")
+
+
+def _yaml_error(err: yaml.YAMLError, where: str) -> SpecError:
+    mark = getattr(err, "problem_mark", None) or getattr(err, "context_mark", None)
+    words = [getattr(err, "context", None), getattr(err, "problem", None)]
+    words = " ".join(w for w in words if w) or str(err)
+    line = mark.line + 1 if mark else None
+    column = f", column {mark.column + 1}" if mark else ""
+    if isinstance(err, yaml.constructor.ConstructorError):
+        fix = "use plain YAML values only: remove the `!` tag"
+    elif isinstance(err, yaml.composer.ComposerError):
+        fix = ("define each anchor (`&name`) before its aliases (`*name`), "
+               "and keep one document per file (no second `---`)")
+    else:
+        fix = ("check the indentation and punctuation near that line "
+               "(YAML indents with spaces, never tabs)")
+    return SpecError(
+        f"the file is not valid YAML: {words} (line {line}{column})",
+        place=where, line=line, fix=fix)
+
+
+def _read_yaml(text: str, where: str) -> _At:
+    """Parse ``text`` safely into line-aware containers; return the root."""
+    if len(text) > MAX_DOCUMENT:
+        raise SpecError(
+            f"the document is too large ({len(text):,} characters; the limit "
+            f"is {MAX_DOCUMENT:,})", place=where,
+            fix="a spec should be a few kilobytes; use matrix shorthand "
+                "(`identity`, a number, a diagonal list) for big blocks")
+    loader = _SpecLoader(text)
+    try:
+        root = loader.get_single_node()
+        if root is None or root.tag == "tag:yaml.org,2002:null":
+            raise SpecError("the file is empty", place=where,
+                            fix="start the file with `spec: 1`, then add "
+                                "`world`, `sensors` and `areas`")
+        if not isinstance(root, yaml.MappingNode):
+            raise SpecError("the top level must be a mapping of keys "
+                            "(`spec: 1`, `world: ...`)",
+                            place=where, line=_node_line(root),
+                            fix="start the file with `spec: 1`")
+        _check_tree(root, loader)
+        data = loader.construct_document(root)
+    except yaml.YAMLError as err:
+        raise _yaml_error(err, where) from None
+    except RecursionError:
+        raise SpecError("the document is nested too deeply", place=where,
+                        fix="flatten the structure; a spec is only a few "
+                            "levels deep") from None
+    finally:
+        loader.dispose()
+    return _At(data, "", data.line)
+
+
+# --------------------------------------------------------------------------
+# Value kinds: each checks one value and describes itself in JSON Schema
+# --------------------------------------------------------------------------
+
+
+def _number(at: _At) -> float:
+    """A finite real number; booleans and quoted numbers are refused."""
+    v = at.value
+    if isinstance(v, bool):
+        at.fail(f"expected a number, got {_describe(v)}",
+                fix="write a number; YAML reads true/false/yes/no/on/off "
+                    "as booleans")
+    if isinstance(v, (int, float)):
+        try:
+            x = float(v)
+        except OverflowError:
+            x = math.inf
+        if not math.isfinite(x):
+            at.fail(f"expected a finite number, got {v}",
+                    fix="write an ordinary number (no .inf or .nan)")
+        return x
+    if isinstance(v, str) and _is_number_text(v):
+        at.fail(f"'{v}' is text, not a number: it is in quotes",
+                fix=f"remove the quotes: {v.strip()}")
+    at.fail(f"expected a number, got {_describe(v)}", fix="write a number")
+
+
+def _is_number_text(text: str) -> bool:
+    try:
+        return math.isfinite(float(text))
+    except ValueError:
+        return False
+
+
+class _Kind:
+    """How one value is checked and how it appears in the JSON Schema."""
+
+    def schema(self) -> dict:
+        raise NotImplementedError
+
+    def check(self, at: _At):
+        raise NotImplementedError
+
+
+@dataclass(frozen=True)
+class _Version(_Kind):
+    def schema(self):
+        return {"const": SPEC_VERSION}
+
+    def check(self, at):
+        v = at.value
+        if isinstance(v, (int, float)) and not isinstance(v, bool):
+            if v == SPEC_VERSION:
+                return SPEC_VERSION
+            at.fail(f"this file says spec version {v}; this tool reads "
+                    f"version {SPEC_VERSION}",
+                    fix=f"write `spec: {SPEC_VERSION}` and convert the file "
+                        f"to version {SPEC_VERSION}")
+        at.fail(f"`spec` must be the number {SPEC_VERSION}, got {_describe(v)}",
+                fix=f"write `spec: {SPEC_VERSION}`")
+
+
+@dataclass(frozen=True)
+class _Int(_Kind):
+    minimum: int
+    maximum: int | None = None
+
+    def schema(self):
+        out = {"type": "integer", "minimum": self.minimum}
+        if self.maximum is not None:
+            out["maximum"] = self.maximum
+        return out
+
+    def check(self, at):
+        x = _number(at)
+        if not x.is_integer():
+            at.fail(f"expected a whole number, got {at.value}",
+                    fix="write a whole number such as 2")
+        if x < self.minimum:
+            at.fail(f"must be at least {self.minimum}, got {at.value}",
+                    fix=f"use a whole number of {self.minimum} or more")
+        if self.maximum is not None and x > self.maximum:
+            at.fail(f"too large: {at.value}; the limit is {self.maximum}",
+                    fix=f"use at most {self.maximum}")
+        return int(x)
+
+
+@dataclass(frozen=True)
+class _Real(_Kind):
+    minimum: float = 0.0
+
+    def schema(self):
+        return {"type": "number", "minimum": self.minimum}
+
+    def check(self, at):
+        x = _number(at)
+        if x < self.minimum:
+            at.fail(f"must be at least {self.minimum:g}, got {at.value}",
+                    fix=f"use a value of {self.minimum:g} or more")
+        return x
+
+
+@dataclass(frozen=True)
+class _Text(_Kind):
+    def schema(self):
+        return {"type": "string", "pattern": r"\S"}
+
+    def check(self, at):
+        if not isinstance(at.value, str) or not at.value.strip():
+            at.fail(f"expected some text, got {_describe(at.value)}",
+                    fix="write the text in quotes")
+        return at.value
+
+
+@dataclass(frozen=True)
+class _Name(_Kind):
+    """The name of a state block, a sensor or an area."""
+
+    def schema(self):
+        return {"$ref": "#/$defs/name"}
+
+    def check(self, at):
+        name = at.value
+        if not isinstance(name, str):
+            at.fail(f"a name must be text, got {_describe(name)}",
+                    fix="put the name in quotes (YAML reads yes/no/on/off as "
+                        "booleans and digits as numbers)")
+        if not name.strip():
+            at.fail("a name cannot be empty or only spaces",
+                    fix="give it a visible name")
+        if "->" in name:
+            at.fail(f"the name '{name}' contains '->', which separates the "
+                    "two ends of a link id", fix="rename it without '->'")
+        if re.fullmatch(_NAME_PATTERN, name) is None:
+            at.fail(f"the name '{name}' contains '[', ']' or '.', which are "
+                    "used to write places such as links[2].noise",
+                    fix="rename it without these characters")
+        return name
+
+
+@dataclass(frozen=True)
+class _Names(_Kind):
+    """One name, or a non-empty list of distinct names; checked as positions."""
+
+    def schema(self):
+        name = {"$ref": "#/$defs/name"}
+        return {"anyOf": [name, {"type": "array", "items": name,
+                                 "minItems": 1, "uniqueItems": True}]}
+
+    def check(self, at):
+        items = _items(at) if isinstance(at.value, list) else [at]
+        if not items:
+            at.fail("the list is empty",
+                    fix="name at least one state, or remove the key")
+        seen = set()
+        for item in items:
+            name = _Name().check(item)
+            if name in seen:
+                item.fail(f"`{name}` is listed twice",
+                          fix="list each name once")
+            seen.add(name)
+        return tuple(items)
+
+
+@dataclass(frozen=True)
+class _Choice(_Kind):
+    options: tuple
+
+    def schema(self):
+        return {"enum": list(self.options)}
+
+    def check(self, at):
+        if at.value not in self.options:
+            at.fail(f"expected one of {', '.join(self.options)}, "
+                    f"got {_describe(at.value)}",
+                    fix=_suggest(at.value, self.options))
+        return at.value
+
+
+@dataclass(frozen=True)
+class _Shorthand:
+    """A matrix as written: checked for numbers, not yet given a shape.
+
+    ``form`` is ``number``, ``diagonal``, ``full``, ``identity`` or ``zero``.
+    """
+
+    form: str
+    value: object
+    at: _At
+
+    def size_hint(self) -> int | None:
+        """The number of rows the written form fixes, if it fixes any."""
+        if self.form in ("diagonal", "full"):
+            return len(self.value)
+        return None
+
+    def expand(self, rows: int, cols: int, why: str) -> np.ndarray:
+        """The full ``rows x cols`` matrix; ``why`` says where the shape comes from."""
+        shape = f"{rows} x {cols}"
+        if self.form == "zero":
+            return np.zeros((rows, cols))
+        if self.form == "full":
+            got = self.value.shape
+            if got != (rows, cols):
+                self.at.fail(f"expected a {shape} matrix ({why}), got "
+                             f"{got[0]} x {got[1]}",
+                             fix=f"give {_plural(rows, 'row')} of "
+                                 f"{_plural(cols, 'number')} each")
+            return self.value
+        if rows != cols:
+            what = ("a flat list is a diagonal matrix" if self.form == "diagonal"
+                    else f"`{self.at.value}` stands for a multiple of the identity")
+            self.at.fail(f"{what}, so it needs a square place; this one is "
+                         f"{shape} ({why})",
+                         fix=f"use a list of lists ({_plural(rows, 'row')} "
+                             f"of {_plural(cols, 'number')} each), or `zero`")
+        if self.form == "diagonal":
+            if len(self.value) != rows:
+                self.at.fail(f"expected a {shape} matrix ({why}), got a "
+                             f"diagonal of {_plural(len(self.value), 'number')}",
+                             fix=f"give {_plural(rows, 'number')} on the "
+                                 f"diagonal")
+            return np.diag(self.value)
+        scale = 1.0 if self.form == "identity" else self.value
+        return scale * np.eye(rows)
+
+
+@dataclass(frozen=True)
+class _Matrix(_Kind):
+    """A matrix in any shorthand form (see ``_Shorthand``)."""
+
+    def schema(self):
+        return {"$ref": "#/$defs/matrix"}
+
+    def check(self, at):
+        v = at.value
+        if isinstance(v, str) and v in _MATRIX_WORDS:
+            return _Shorthand(v, None, at)
+        if isinstance(v, str) and not _is_number_text(v):
+            at.fail(f"expected a matrix, got {_describe(v)}",
+                    fix=_suggest(v, _MATRIX_WORDS) + ", a number or a list")
+        if not isinstance(v, list):
+            return _Shorthand("number", _number(at), at)
+        if not v:
+            at.fail("a matrix cannot be an empty list",
+                    fix="write numbers, a list of lists, `identity` or `zero`")
+        rows = [isinstance(r, list) for r in v]
+        if all(rows):
+            return _Shorthand("full", self._rows(at), at)
+        if any(rows):
+            at.fail("a matrix mixes numbers and lists",
+                    fix="write either a flat list (a diagonal) or a list of "
+                        "lists (one list per row)")
+        return _Shorthand("diagonal", self._entries(at), at)
+
+    @staticmethod
+    def _entries(at: _At) -> np.ndarray:
+        # Fast path for the usual case; the slow path finds the bad entry.
+        if all(type(x) in (int, float) for x in at.value):
+            arr = np.array(at.value, dtype=float)
+            if np.isfinite(arr).all():
+                return arr
+        return np.array([_number(item) for item in _items(at)])
+
+    @classmethod
+    def _rows(cls, at: _At) -> np.ndarray:
+        rows = _items(at)
+        width = len(rows[0].value)
+        for row in rows:
+            if not row.value:
+                row.fail("a row of a matrix cannot be empty",
+                         fix="give every row its numbers")
+            if len(row.value) != width:
+                row.fail(f"the rows have different lengths ({len(row.value)} "
+                         f"here, {width} in the first row)",
+                         fix="give every row the same number of entries")
+        return np.vstack([cls._entries(row) for row in rows])
+
+
+@dataclass(frozen=True)
+class _Key:
+    """One allowed key of a section: the unit the parser and schema share."""
+
+    name: str
+    kind: _Kind
+    doc: str
+    required: bool = False
+    default: object = None  # None: no fixed default (see doc)
+    fix: str = ""  # what to add when a required key is missing
+
+
+@dataclass(frozen=True)
+class _Table(_Kind):
+    """A mapping with a fixed set of keys; ``extra`` adds schema rules."""
+
+    keys: tuple
+    extra: dict | None = None
+
+    def schema(self):
+        out = {"type": "object",
+               "properties": {k.name: _key_schema(k) for k in self.keys},
+               "additionalProperties": False}
+        required = [k.name for k in self.keys if k.required]
+        if required:
+            out["required"] = required
+        out.update(self.extra or {})
+        return out
+
+    def check(self, at):
+        return _read_table(at, self.keys)
+
+
+@dataclass(frozen=True)
+class _MapOf(_Kind):
+    """A mapping from names to values of one kind, in the written order."""
+
+    value: _Kind
+    what: str  # singular noun for messages
+    min_items: int = 0
+
+    def schema(self):
+        return {"type": "object", "propertyNames": {"$ref": "#/$defs/name"},
+                "additionalProperties": self.value.schema(),
+                "minProperties": self.min_items}
+
+    def check(self, at):
+        if not isinstance(at.value, dict):
+            at.fail(f"expected a mapping from names to {self.what}s, got "
+                    f"{_describe(at.value)}", fix=f"write `NAME: ...` lines")
+        if len(at.value) < self.min_items:
+            at.fail(f"needs at least one {self.what}",
+                    fix=f"add a {self.what} under this key")
+        pairs = []
+        for key in at.value:
+            child = _child(at, key)
+            name = _Name().check(_At(key, child.place, child.line))
+            pairs.append((name, self.value.check(child)))
+        return pairs
+
+
+@dataclass(frozen=True)
+class _ListOf(_Kind):
+    item: _Kind
+    example: str
+
+    def schema(self):
+        return {"type": "array", "items": self.item.schema()}
+
+    def check(self, at):
+        if not isinstance(at.value, list):
+            at.fail(f"expected a list, got {_describe(at.value)}",
+                    fix=f"write one `- {self.example}` line per entry")
+        return _items(at)
+
+
+def _key_schema(key: _Key) -> dict:
+    out = dict(key.kind.schema())
+    out["description"] = key.doc
+    if key.default is not None:
+        out["default"] = key.default
+    return out
+
+
+class _Fields:
+    """The keys of one mapping in the file, checked against its key table."""
+
+    def __init__(self, at: _At, keys: tuple):
+        self.at = at
+        self.keys = {k.name: k for k in keys}
+
+    def given(self, name: str) -> bool:
+        return name in self.at.value
+
+    def pos(self, name: str) -> _At:
+        """Where ``name`` is; for a missing key, the mapping's own line."""
+        if self.given(name):
+            return _child(self.at, name)
+        return _At(None, _join(self.at.place, name), self.at.line)
+
+    def get(self, name: str):
+        """The checked value of ``name``, or its default (None if it has none)."""
+        key = self.keys[name]
+        if self.given(name):
+            return key.kind.check(self.pos(name))
+        if key.default is None:
+            return None
+        return key.kind.check(replace(self.pos(name), value=key.default))
+
+
+def _read_table(at: _At, keys: tuple) -> _Fields:
+    """Check that ``at`` is a mapping using only (and all required) ``keys``."""
+    names = [k.name for k in keys]
+    fields = _Fields(at, keys)
+    if not isinstance(at.value, dict):
+        at.fail(f"expected a mapping of keys, got {_describe(at.value)}",
+                fix=f"write `key: value` entries; the keys allowed here are: "
+                    f"{', '.join(names)}")
+    for key in at.value:
+        if key not in names:
+            _child(at, key).fail(f"unknown key `{key}`",
+                                 fix=_suggest(key, names))
+    for key in keys:
+        if key.required and not fields.given(key.name):
+            fields.pos(key.name).fail(
+                f"the required key `{key.name}` is missing: {key.doc}",
+                fix=key.fix or f"add `{key.name}: ...`")
+    for key in at.value:
+        if at.value[key] is None:
+            _child(at, key).fail(f"`{key}` has no value",
+                                 fix="give it a value, or delete the key to "
+                                     "use its default")
+    return fields
+
+
+@dataclass(frozen=True)
+class _Selector(_Kind):
+    """Which links a budget covers: ``all``, a list of ids, ``{from:}``/``{to:}``."""
+
+    def schema(self):
+        return {"anyOf": [
+            {"const": "all"},
+            {"type": "array", "items": {"type": "string"}, "minItems": 1,
+             "uniqueItems": True},
+            _Table(_SELECTOR_KEYS,
+                   {"minProperties": 1, "maxProperties": 1}).schema(),
+        ]}
+
+    def check(self, at):
+        """Return ``("all", None)``, ``("ids", [positions])`` or ``(end, position)``."""
+        if at.value == "all":
+            return "all", None
+        if isinstance(at.value, list):
+            return "ids", _items(at)
+        if isinstance(at.value, dict):
+            fields = _read_table(at, _SELECTOR_KEYS)
+            ends = [k.name for k in _SELECTOR_KEYS if fields.given(k.name)]
+            if len(ends) != 1:
+                at.fail("name exactly one of `from` or `to`",
+                        fix="use {from: NODE} for the links out of a node, "
+                            "or {to: NODE} for the links into it")
+            fields.get(ends[0])  # a valid name
+            return ends[0], fields.pos(ends[0])
+        at.fail(f"expected `all`, a list of link ids, {{from: NODE}} or "
+                f"{{to: NODE}}, got {_describe(at.value)}",
+                fix="for a single link write a list: [A->B]")
+
+
+# --------------------------------------------------------------------------
+# Key tables: one per section (the single source of truth)
+# --------------------------------------------------------------------------
+
+_STATE_KEYS = (
+    _Key("dim", _Int(1, MAX_TOTAL_DIM),
+         "size of the block; default: the size of a list-form dynamics or "
+         "noise, else 1"),
+    _Key("dynamics", _Matrix(), "the diagonal block A[this, this] (dim x dim)",
+         default="zero"),
+    _Key("noise", _Matrix(),
+         "process-noise covariance of the block (dim x dim)", default="zero"),
+    _Key("driven_by", _MapOf(_Matrix(), "matrix"),
+         "other block name -> the block A[this, other] (dim x other's dim)"),
+)
+
+_WORLD_KEYS = (
+    _Key("states", _MapOf(_Table(_STATE_KEYS), "state", 1),
+         "the named blocks of the world state, stacked in the written order",
+         required=True, fix="add `states:` with at least one named block"),
+)
+
+_SENSOR_KEYS = (
+    _Key("observes", _MapOf(_Matrix(), "matrix", 1),
+         "state name -> the block C[sensor, state] (sensor dim x state dim); "
+         "blocks not named are zero", required=True,
+         fix="add `observes: {STATE: identity}`"),
+    _Key("noise", _Matrix(), "sensor-noise covariance (dim x dim)",
+         default="zero"),
+    _Key("dim", _Int(1, MAX_TOTAL_DIM),
+         "size of the reading; default: inferred from the observes blocks"),
+)
+
+_AREA_PIN_KEYS = (
+    _Key("M", _Matrix(), "the area's own transition gain (dim x dim)"),
+)
+
+_AREA_KEYS = (
+    _Key("tracks", _Names(),
+         "a state name or a list of them (stacked): the area's target; "
+         "leave out for a free relay"),
+    _Key("dim", _Int(1, MAX_TOTAL_DIM),
+         "size of the area's state; default: the tracked size; required for "
+         "a relay"),
+    _Key("weight", _Real(0.0),
+         "weight of the inference error in the cost; default: 1 if the area "
+         "tracks something, else 0"),
+    _Key("lag", _Int(0, MAX_LAG),
+         "0 estimates the present, 1 the previous step, more smooths",
+         default=0),
+    _Key("activity_price", _Real(0.0),
+         "price per unit of the area's activity E||z||^2", default=0),
+    _Key("pin", _Table(_AREA_PIN_KEYS), "gains fixed by hand (not optimised)"),
+)
+
+_K_PIN = _Key("K", _Matrix(),
+              "the receiving area's gain for this link (receiver dim x dim)")
+_PIN_KEYS = {
+    PREDICTION: (
+        _Key("G", _Matrix(), "the sender's gain (dim x sending area dim)"),
+        _K_PIN,
+    ),
+    RESIDUAL: (
+        _Key("S", _Matrix(), "the gain on the sender's signal "
+                             "(dim x sender dim)"),
+        _Key("P", _Matrix(), "the gain on the paired prediction received "
+                             "(dim x that prediction's dim)"),
+        _K_PIN,
+    ),
+}
+
+
+def _link_pin_schema_rules() -> dict:
+    """Schema rules that allow each kind of link only its own pinned gains."""
+    return {"allOf": [
+        {"if": {"properties": {"kind": {"const": kind}}, "required": ["kind"]},
+         "then": {"properties": {"pin": {"propertyNames": {
+             "enum": [k.name for k in keys]}}}}}
+        for kind, keys in _PIN_KEYS.items()
+    ]}
+
+
+# The schema of a link's `pin` allows every gain; the rules above and the
+# parser narrow it to the link's kind.
+_LINK_PIN_KEYS = tuple({k.name: k for keys in _PIN_KEYS.values()
+                        for k in keys}.values())
+
+_LINK_KEYS = (
+    _Key("from", _Name(), "the sending node (a sensor or an area)",
+         required=True, fix="add `from: NODE`"),
+    _Key("to", _Name(), "the receiving node", required=True,
+         fix="add `to: NODE`"),
+    _Key("kind", _Choice(LINK_KINDS),
+         "prediction (area to area or sensor) or residual (sensor or area to "
+         "area)", required=True, fix="add `kind: prediction` or "
+                                     "`kind: residual`"),
+    _Key("dim", _Int(1, MAX_TOTAL_DIM),
+         "size of the signal; default: a prediction carries the receiver's "
+         "size, a residual the sender's"),
+    _Key("noise", _Matrix(), "channel-noise covariance (dim x dim)",
+         default="zero"),
+    _Key("price", _Real(0.0), "price per unit of power sent", default=0),
+    _Key("pin", _Table(_LINK_PIN_KEYS),
+         "gains fixed by hand: G and K on a prediction; S, P and K on a "
+         "residual"),
+)
+
+_SELECTOR_KEYS = (
+    _Key("from", _Name(), "every link out of this node"),
+    _Key("to", _Name(), "every link into this node"),
+)
+
+_BUDGET_KEYS = (
+    _Key("name", _Text(), "a unique name, used in reports", required=True,
+         fix="add `name: ...`"),
+    _Key("links", _Selector(),
+         "`all`, a list of link ids (`A->B`), {from: NODE} or {to: NODE}",
+         required=True, fix="add `links: all` or a list of link ids"),
+    _Key("total", _Real(0.0), "the most power the group may send in total",
+         required=True, fix="add `total: ...`"),
+)
+
+_TOP_KEYS = (
+    _Key("spec", _Version(), "format version of this file", required=True,
+         fix=f"add `spec: {SPEC_VERSION}` as the first line"),
+    _Key("name", _Text(),
+         "free-text name of the circuit; default: the file name without its "
+         "extension"),
+    _Key("world", _Table(_WORLD_KEYS), "the world the circuit observes",
+         required=True, fix="add a `world:` section with `states:`"),
+    _Key("sensors", _MapOf(_Table(_SENSOR_KEYS), "sensor", 1),
+         "the sensors (a circuit needs at least one)", required=True,
+         fix="add a `sensors:` section with at least one sensor"),
+    _Key("areas", _MapOf(_Table(_AREA_KEYS), "area", 1),
+         "the areas (a circuit needs at least one)", required=True,
+         fix="add an `areas:` section with at least one area"),
+    _Key("links", _ListOf(_Table(_LINK_KEYS, _link_pin_schema_rules()),
+                          "{from: A, to: B, kind: residual}"),
+         "the noisy channels between nodes; id `FROM->TO`", default=[]),
+    _Key("budgets", _ListOf(_Table(_BUDGET_KEYS),
+                            "{name: N, links: all, total: 1.0}"),
+         "hard limits on the total power of groups of links", default=[]),
+)
+
+
+def spec_schema() -> dict:
+    """Return the JSON Schema (draft 2020-12) of spec files, version 1.
+
+    The schema is generated from the key tables the parser uses, so it lists
+    exactly the keys the parser accepts. It checks structure (keys, types,
+    signs, matrix shorthand); rules that need the whole circuit (shapes,
+    names, well-posedness) are checked only by :func:`parse_spec`.
+
+    Returns
+    -------
+    dict
+        The schema, ready for ``json.dump`` or ``jsonschema`` validation.
+
+    Examples
+    --------
+    >>> schema = spec_schema()
+    >>> schema["$schema"]
+    'https://json-schema.org/draft/2020-12/schema'
+    >>> schema["required"]
+    ['spec', 'world', 'sensors', 'areas']
+    """
+    body = _Table(_TOP_KEYS).schema()
+    return {
+        "$schema": "https://json-schema.org/draft/2020-12/schema",
+        "title": f"hierarchy circuit spec, version {SPEC_VERSION}",
+        "description": "A multi-area predictive circuit: world, sensors, "
+                       "areas, links and budgets.",
+        **body,
+        "$defs": {
+            "name": {
+                "type": "string", "pattern": _NAME_PATTERN,
+                "description": "a name: not blank, without '->', '[', ']' "
+                               "or '.'"},
+            "matrix": {
+                "description": "a matrix: a number s (s times the identity), "
+                               "a flat list (the diagonal), a list of lists "
+                               "(row by row), `identity` or `zero`",
+                "anyOf": [
+                    {"type": "number"},
+                    {"enum": list(_MATRIX_WORDS)},
+                    {"type": "array", "minItems": 1,
+                     "items": {"type": "number"}},
+                    {"type": "array", "minItems": 1,
+                     "items": {"type": "array", "minItems": 1,
+                               "items": {"type": "number"}}},
+                ]},
+        },
+    }
+
+
+# --------------------------------------------------------------------------
+# Checks shared by the sections
+# --------------------------------------------------------------------------
+
+
+def _known(at: _At, name, known, what: str) -> None:
+    if name not in known:
+        at.fail(f"there is no {what} called `{name}`", fix=_suggest(name, known))
+
+
+def _check_total(at: _At, sizes, what: str) -> None:
+    """Refuse circuits too big to build, before any big matrix is made."""
+    total = sum(sizes)
+    if total > MAX_TOTAL_DIM:
+        at.fail(f"too large: {what} add up to {total}; the limit is "
+                f"{MAX_TOTAL_DIM}", fix="make the blocks smaller")
+
+
+def _covariance(matrix: _Shorthand, n: int, why: str) -> np.ndarray:
+    """Expand a covariance and check that it is symmetric and PSD."""
+    cov = matrix.expand(n, n, why)
+    scale = np.abs(cov).max()
+    if np.abs(cov - cov.T).max() > 1e-9 * scale:
+        matrix.at.fail("a covariance must be symmetric, and this one is not",
+                       fix="make entry [i][j] equal to entry [j][i]")
+    eig = np.linalg.eigvalsh(cov)
+    if eig.min() < -1e-10 * max(1.0, np.abs(eig).max()):
+        matrix.at.fail(f"a covariance must be positive semidefinite, and this "
+                       f"one has the negative eigenvalue {eig.min():.3g}",
+                       fix="check the signs and make the off-diagonal "
+                           "entries smaller than the diagonal ones")
+    return cov
+
+
+def _positive_definite(cov: np.ndarray) -> bool:
+    eig = np.linalg.eigvalsh(cov)
+    return eig.max() > 0 and eig.min() > 1e-12 * eig.max()
+
+
+def _expand_pins(pins: _Fields | None, shapes: dict) -> dict:
+    """Expand the pinned gains given; ``shapes`` maps gain -> (rows, cols, why)."""
+    if pins is None:
+        return {}
+    return {gain: frozen_array(pins.get(gain).expand(*shape))
+            for gain, shape in shapes.items() if pins.given(gain)}
+
+
+# --------------------------------------------------------------------------
+# Sections
+# --------------------------------------------------------------------------
+
+
+def _parse_world(fields: _Fields) -> World:
+    states = fields.get("states")
+    dims = {name: _state_dim(f) for name, f in states}
+    _check_total(fields.pos("states"), dims.values(),
+                 "the sizes of the world's state blocks")
+    world = World(tuple(_state_block(name, f, dims) for name, f in states))
+    radius = float(np.abs(np.linalg.eigvals(world.A)).max())
+    if radius >= 1:
+        fields.at.fail(f"the world's dynamics have spectral radius "
+                       f"{radius:.6g}; a stationary regime needs < 1",
+                       fix="shrink the dynamics (and driven_by blocks) so that "
+                           "every mode decays, e.g. 0.99 instead of 1 for a "
+                           "slow drift")
+    return world
+
+
+def _state_dim(f: _Fields) -> int:
+    if f.given("dim"):
+        return f.get("dim")
+    for key in ("dynamics", "noise"):
+        hint = f.get(key).size_hint()
+        if hint is not None:
+            return hint
+    return 1
+
+
+def _state_block(name: str, f: _Fields, dims: dict) -> StateBlock:
+    n = dims[name]
+    why = f"the state `{name}` has size {n}"
+    driven = {}
+    for other, matrix in f.get("driven_by") or ():
+        _known(matrix.at, other, dims, "state")
+        if other == name:
+            matrix.at.fail("a block cannot be listed as driving itself",
+                           fix="put the block's own dynamics under `dynamics`")
+        driven[other] = frozen_array(matrix.expand(
+            n, dims[other], f"rows: `{name}` has size {n}; columns: "
+                            f"`{other}` has size {dims[other]}"))
+    return StateBlock(
+        name=name, dim=n,
+        dynamics=frozen_array(f.get("dynamics").expand(n, n, why)),
+        noise=frozen_array(_covariance(f.get("noise"), n, why)),
+        driven_by=frozen_map(driven))
+
+
+def _parse_sensors(pairs: list, at: _At, world: World) -> tuple:
+    sizes = {b.name: b.dim for b in world.states}
+    drafts = []
+    for name, f in pairs:
+        observes = f.get("observes")
+        for state, matrix in observes:
+            _known(matrix.at, state, sizes, "state")
+        dim = f.get("dim") if f.given("dim") else _sensor_dim(name, f,
+                                                              observes, sizes)
+        drafts.append((name, f, observes, dim))
+    _check_total(at, [dim for *_, dim in drafts], "the sensors' sizes")
+    return tuple(_sensor(*draft, sizes) for draft in drafts)
+
+
+def _sensor_dim(name: str, f: _Fields, observes: list, sizes: dict) -> int:
+    """The first observed block that fixes its row count decides the size."""
+    for state, matrix in observes:
+        if matrix.form in ("full", "diagonal"):
+            return len(matrix.value)
+        if matrix.form in ("number", "identity"):
+            return sizes[state]
+    hint = f.get("noise").size_hint()
+    if hint is None:
+        f.at.fail(f"cannot tell the size of sensor `{name}`: its observed "
+                  f"blocks are all `zero`", fix="add `dim: N`")
+    return hint
+
+
+def _sensor(name, f, observes, dim, sizes) -> Sensor:
+    blocks = {
+        state: frozen_array(matrix.expand(
+            dim, sizes[state], f"rows: sensor `{name}` has size {dim}; "
+                               f"columns: state `{state}` has size "
+                               f"{sizes[state]}"))
+        for state, matrix in observes}
+    noise = _covariance(f.get("noise"), dim, f"sensor `{name}` has size {dim}")
+    return Sensor(name=name, observes=frozen_map(blocks),
+                  noise=frozen_array(noise))
+
+
+def _parse_areas(pairs: list, at: _At, world: World, sensors: tuple) -> tuple:
+    sizes = {b.name: b.dim for b in world.states}
+    sensor_names = {s.name for s in sensors}
+    drafts = [_area_draft(name, f, sizes, sensor_names) for name, f in pairs]
+    _check_total(at, [dim for *_, dim in drafts], "the areas' sizes")
+    return tuple(_area(*draft) for draft in drafts)
+
+
+def _area_draft(name: str, f: _Fields, sizes: dict, sensor_names: set):
+    if name in sensor_names:
+        f.at.fail(f"`{name}` is already the name of a sensor; sensors and "
+                  f"areas share one set of names", fix="rename one of them")
+    tracks = f.get("tracks") or ()
+    for state in tracks:
+        _known(state, state.value, sizes, "state")
+    tracked = sum(sizes[state.value] for state in tracks)
+    if f.given("dim"):
+        dim = f.get("dim")
+        if dim < tracked:
+            f.pos("dim").fail(f"the area tracks {tracked} state dimensions, "
+                              f"so its dim must be at least {tracked}; got {dim}",
+                              fix=f"use dim: {tracked} or more (the extra "
+                                  f"coordinates are private memory)")
+    elif tracks:
+        dim = tracked
+    else:
+        f.at.fail(f"area `{name}` tracks nothing, so its size must be given",
+                  fix="add `dim: N` for a free relay, or `tracks: STATE`")
+    return name, f, tuple(state.value for state in tracks), dim
+
+
+def _area(name: str, f: _Fields, tracks: tuple, dim: int) -> Area:
+    weight = f.get("weight") if f.given("weight") else float(bool(tracks))
+    if weight > 0 and not tracks:
+        f.pos("weight").fail("an area that tracks nothing has no error to weigh",
+                             fix="remove `weight`, or add `tracks: STATE`")
+    lag = f.get("lag")
+    if lag > 0 and not tracks:
+        f.pos("lag").fail("a lag only applies to an area that tracks something",
+                          fix="remove `lag`, or add `tracks: STATE`")
+    pin = _expand_pins(f.get("pin"),
+                       {"M": (dim, dim, f"area `{name}` has size {dim}")})
+    return Area(name=name, dim=dim, tracks=tracks, weight=weight, lag=lag,
+                activity_price=f.get("activity_price"), pin=frozen_map(pin))
+
+
+@dataclass(frozen=True)
+class _LinkDraft:
+    """A link whose ends, kind and size are known; matrices come later."""
+
+    fields: _Fields
+    source: str
+    target: str
+    kind: str
+    dim: int
+
+    @property
+    def id(self) -> str:
+        return f"{self.source}->{self.target}"
+
+    @property
+    def label(self) -> str:
+        return self.fields.at.place
+
+
+def _link_label(item: _At) -> _At:
+    """Name a link item by index and id, e.g. ``links[2] (low->high)``."""
+    v = item.value
+    if isinstance(v, dict) and isinstance(v.get("from"), str) \
+            and isinstance(v.get("to"), str):
+        return replace(item, place=f"{item.place} ({v['from']}->{v['to']})")
+    return item
+
+
+def _draft_links(items: list, node_dims: dict, sensor_names: set) -> list:
+    drafts, seen = [], {}
+    for item in items:
+        draft = _link_draft(_link_label(item), node_dims, sensor_names)
+        if draft.id in seen:
+            draft.fields.at.fail(
+                f"there is already a link {draft.id} ({seen[draft.id]}); at "
+                f"most one link may join an ordered pair of nodes",
+                fix="merge the two into one link (raise its dim for a wider "
+                    "channel), or delete one")
+        seen[draft.id] = draft.label
+        drafts.append(draft)
+    return drafts
+
+
+def _link_draft(at: _At, node_dims: dict, sensor_names: set) -> _LinkDraft:
+    f = _read_table(at, _LINK_KEYS)
+    source, target, kind = f.get("from"), f.get("to"), f.get("kind")
+    _known(f.pos("from"), source, node_dims, "sensor or area")
+    _known(f.pos("to"), target, node_dims, "sensor or area")
+    if source == target:
+        f.pos("to").fail("a link cannot go from a node to itself",
+                         fix="an area's own memory is its gain M; remove "
+                             "this link")
+    if kind == PREDICTION and source in sensor_names:
+        f.pos("from").fail(f"a prediction link starts at an area, and "
+                           f"`{source}` is a sensor",
+                           fix="a signal going up from a sensor is a "
+                               "residual: write `kind: residual`")
+    if kind == RESIDUAL and target in sensor_names:
+        f.pos("to").fail(f"a residual link ends at an area, and `{target}` is "
+                         f"a sensor", fix="a signal going down to a sensor is a "
+                                          "prediction: write `kind: prediction`")
+    default_dim = node_dims[target] if kind == PREDICTION else node_dims[source]
+    dim = f.get("dim") if f.given("dim") else default_dim
+    return _LinkDraft(f, source, target, kind, dim)
+
+
+def _link(draft: _LinkDraft, drafts_by_id: dict, node_dims: dict,
+          sensor_names: set) -> Link:
+    f = draft.fields
+    noise = _covariance(f.get("noise"), draft.dim,
+                        f"the link carries {draft.dim} numbers")
+    pin = _link_pins(draft, drafts_by_id, node_dims, sensor_names)
+    return Link(source=draft.source, target=draft.target, kind=draft.kind,
+                dim=draft.dim, noise=frozen_array(noise), price=f.get("price"),
+                pin=frozen_map(pin))
+
+
+def _link_pins(draft, drafts_by_id, node_dims, sensor_names) -> dict:
+    f, dim = draft.fields, draft.dim
+    if not f.given("pin"):
+        return {}
+    _check_pin_kind(f.pos("pin"), draft.kind)
+    pins = _read_table(f.pos("pin"), _PIN_KEYS[draft.kind])
+    src, dst = draft.source, draft.target
+    sender = (dim, node_dims[src], f"rows: the link's dim {dim}; columns: "
+                                   f"`{src}` has size {node_dims[src]}")
+    shapes = {}
+    if draft.kind == PREDICTION:
+        shapes["G"] = sender
+        if dst in sensor_names and pins.given("K"):
+            pins.pos("K").fail(f"a prediction into sensor `{dst}` has no "
+                               f"receiving gain K: a sensor keeps no state",
+                               fix="remove K")
+    else:
+        shapes["S"] = sender
+        pair = drafts_by_id.get(f"{dst}->{src}")
+        if pair is not None and pair.kind == PREDICTION:
+            shapes["P"] = (dim, pair.dim, f"rows: the link's dim {dim}; "
+                                          f"columns: the dim of {pair.id}, "
+                                          f"{pair.dim}")
+        elif pins.given("P"):
+            pins.pos("P").fail(f"there is no prediction link {dst}->{src} for "
+                               f"this residual to subtract, so it has no gain P",
+                               fix=f"remove P, or add the prediction link "
+                                   f"{dst}->{src}")
+    if dst not in sensor_names:
+        shapes["K"] = (node_dims[dst], dim, f"rows: `{dst}` has size "
+                                            f"{node_dims[dst]}; columns: the "
+                                            f"link's dim {dim}")
+    return _expand_pins(pins, shapes)
+
+
+def _check_pin_kind(at: _At, kind: str) -> None:
+    """Say plainly when a gain of the other kind of link is pinned."""
+    own = [k.name for k in _PIN_KEYS[kind]]
+    every_gain = {k.name for k in _LINK_PIN_KEYS}
+    if not isinstance(at.value, dict):
+        return  # _read_table reports it
+    for gain in at.value:
+        if gain in every_gain and gain not in own:
+            _child(at, gain).fail(
+                f"a {kind} link has no gain {gain}",
+                fix=f"a {kind} link pins only {', '.join(own)}; remove {gain} "
+                    f"or change the kind")
+
+
+def _parse_budgets(items: list, links: tuple, node_dims: dict) -> tuple:
+    budgets, seen = [], {}
+    for item in items:
+        f = _read_table(item, _BUDGET_KEYS)
+        name = f.get("name")
+        if name in seen:
+            f.pos("name").fail(f"there is already a budget called `{name}` "
+                               f"({seen[name]})",
+                               fix="give every budget its own name")
+        seen[name] = item.place
+        ids, selector = _select_links(f.pos("links"), f.get("links"), links,
+                                      node_dims)
+        budgets.append(Budget(name=name, links=ids, total=f.get("total"),
+                              selector=selector))
+    return tuple(budgets)
+
+
+def _select_links(at: _At, choice: tuple, links: tuple, node_dims: dict):
+    """Resolve a budget's selector to link ids and a short description."""
+    how, arg = choice
+    all_ids = [link.id for link in links]
+    if how == "all":
+        ids, text = all_ids, "all"
+    elif how == "ids":
+        ids = []
+        for pos in arg:
+            _known(pos, pos.value, all_ids, "link")
+            if pos.value in ids:
+                pos.fail(f"the link {pos.value} is listed twice",
+                         fix="list each link once")
+            ids.append(pos.value)
+        text = ", ".join(ids)
+    else:
+        _known(arg, arg.value, node_dims, "sensor or area")
+        end = "source" if how == "from" else "target"
+        ids = [link.id for link in links if getattr(link, end) == arg.value]
+        text = f"{how} {arg.value}"
+    if not ids:
+        at.fail("this group selects no links",
+                fix="name links that exist, or remove the budget")
+    return tuple(ids), text
+
+
+def _check_costs(drafts: list, links: tuple, budgets: tuple) -> None:
+    """Every noisy link needs a cost, and every costed link needs noise.
+
+    Without noise, energy is free (shrink the sender, grow the receiver);
+    without a price or budget, a louder noisy link is always better. Either
+    way the optimum does not exist.
+    """
+    budget_of = {}
+    for budget in budgets:
+        for link_id in budget.links:
+            budget_of.setdefault(link_id, budget.name)
+    ids = {link.id: link for link in links}
+    for draft, link in zip(drafts, links):
+        if link.price > 0 or link.id in budget_of:
+            why = (f"has price {link.price:g}" if link.price > 0
+                   else f"is in budget `{budget_of[link.id]}`")
+            if not _positive_definite(link.noise):
+                draft.fields.pos("noise").fail(
+                    f"this link {why}, but its channel noise is not positive "
+                    f"definite; on a noiseless channel energy is free, so no "
+                    f"optimum exists",
+                    fix="give the channel noise, e.g. `noise: 0.01`")
+        elif np.any(link.noise) and not _sender_pinned(link, ids):
+            draft.fields.at.fail(
+                "this link is noisy but has no price and is in no budget: "
+                "sending louder is then always better and free, so no "
+                "optimum exists",
+                fix="give it a price (e.g. `price: 0.1`) or put it in a budget")
+
+
+def _sender_pinned(link: Link, links_by_id: dict) -> bool:
+    if link.kind == PREDICTION:
+        return "G" in link.pin
+    pair = links_by_id.get(f"{link.target}->{link.source}")
+    has_pair = pair is not None and pair.kind == PREDICTION
+    return "S" in link.pin and ("P" in link.pin or not has_pair)
+
+
+def _warnings(drafts: list, links: tuple, sensor_names: set) -> tuple:
+    ids = {link.id for link in links}
+    out = []
+    for draft, link in zip(drafts, links):
+        back = f"{link.target}->{link.source}"
+        if link.target in sensor_names and back not in ids:
+            out.append(f"{draft.label}: dead link: no residual goes from "
+                       f"sensor `{link.target}` back to `{link.source}`, so "
+                       f"this prediction is never used")
+        for gain, value in link.pin.items():
+            if not np.any(value):
+                out.append(f"{draft.label}.pin.{gain}: the pinned gain is all "
+                           f"zeros, so nothing passes through this link")
+    return tuple(out)
+
+
+def _parse_document(root: _At, path) -> Spec:
+    top = _read_table(root, _TOP_KEYS)
+    top.get("spec")
+    world = _parse_world(top.get("world"))
+    sensors = _parse_sensors(top.get("sensors"), top.pos("sensors"), world)
+    areas = _parse_areas(top.get("areas"), top.pos("areas"), world, sensors)
+    node_dims = {node.name: node.dim for node in sensors + areas}
+    sensor_names = {s.name for s in sensors}
+    drafts = _draft_links(top.get("links"), node_dims, sensor_names)
+    _check_total(top.pos("links"), [d.dim for d in drafts], "the links' sizes")
+    drafts_by_id = {d.id: d for d in drafts}
+    links = tuple(_link(d, drafts_by_id, node_dims, sensor_names)
+                  for d in drafts)
+    budgets = _parse_budgets(top.get("budgets"), links, node_dims)
+    _check_costs(drafts, links, budgets)
+    default_name = Path(path).stem if path else "unnamed"
+    return Spec(name=top.get("name") or default_name, world=world,
+                sensors=sensors, areas=areas, links=links, budgets=budgets,
+                version=SPEC_VERSION,
+                warnings=_warnings(drafts, links, sensor_names),
+                path=str(path) if path is not None else None)
+
+
+# --------------------------------------------------------------------------
+# Public API
+# --------------------------------------------------------------------------
+
+
+def parse_spec(text: str, path: str | None = None) -> Spec:
+    """Parse the YAML text of a spec (version 1) into a checked :class:`Spec`.
+
+    Parameters
+    ----------
+    text : str
+        The YAML document.
+    path : str, optional
+        Where the text came from; used in messages and as the default name.
+
+    Returns
+    -------
+    Spec
+        The circuit, with every matrix expanded from its shorthand and every
+        default filled in. Non-fatal findings are in ``spec.warnings``.
+
+    Raises
+    ------
+    SpecError
+        For anything malformed or ill-posed, with place, line and fix.
+
+    Examples
+    --------
+    >>> spec = parse_spec('''
+    ... spec: 1
+    ... world: {states: {x: {dynamics: 0.9, noise: 1.0}}}
+    ... sensors: {eye: {observes: {x: identity}, noise: 0.1}}
+    ... areas: {v1: {tracks: x}}
+    ... links: [{from: eye, to: v1, kind: residual}]
+    ... ''')
+    >>> spec.name, spec.areas[0].dim, spec.links[0].id
+    ('unnamed', 1, 'eye->v1')
+    """
+    where = str(path) if path is not None else "<spec text>"
+    return _parse_document(_read_yaml(text, where), path)
+
+
+def load_spec(path) -> Spec:
+    """Read a spec file (YAML, version 1) and parse it with :func:`parse_spec`.
+
+    Parameters
+    ----------
+    path : str or os.PathLike
+        The file to read (UTF-8).
+
+    Returns
+    -------
+    Spec
+        The checked circuit; its ``name`` defaults to the file's stem.
+
+    Raises
+    ------
+    SpecError
+        If the file cannot be read, or its content is not a valid spec.
+
+    Examples
+    --------
+    >>> import pathlib, tempfile
+    >>> path = pathlib.Path(tempfile.mkdtemp()) / "tiny.yaml"
+    >>> _ = path.write_text('''
+    ... spec: 1
+    ... world: {states: {x: {dynamics: 0.5, noise: 1.0}}}
+    ... sensors: {eye: {observes: {x: 1}}}
+    ... areas: {v1: {tracks: x}}
+    ... ''')
+    >>> load_spec(path).name
+    'tiny'
+    """
+    path = Path(path)
+    try:
+        if path.stat().st_size > MAX_DOCUMENT:
+            raise SpecError(f"the file is too large (more than {MAX_DOCUMENT:,} "
+                            f"bytes)", place=str(path),
+                            fix="a spec should be a few kilobytes")
+        text = path.read_text(encoding="utf-8")
+    except FileNotFoundError:
+        raise SpecError("the spec file does not exist", place=str(path),
+                        fix="check the path and the current folder") from None
+    except IsADirectoryError:
+        raise SpecError("this is a folder, not a spec file", place=str(path),
+                        fix="give the path of a .yaml file") from None
+    except UnicodeDecodeError:
+        raise SpecError("the file is not UTF-8 text", place=str(path),
+                        fix="save the spec as UTF-8 text") from None
+    except OSError as err:
+        raise SpecError(f"the file cannot be read ({err.strerror})",
+                        place=str(path),
+                        fix="check that the file exists and is readable") from None
+    return parse_spec(text, path=str(path))
+
+
+def main(argv=None) -> int:
+    """Print the spec JSON Schema, or write it to ``spec-v1.schema.json``.
+
+    This is what ``python -m hierarchy.spec [--write-schema]`` runs.
+
+    Parameters
+    ----------
+    argv : list of str, optional
+        Command-line arguments (default: ``sys.argv[1:]``).
+
+    Returns
+    -------
+    int
+        The exit status, 0.
+
+    Examples
+    --------
+    >>> main([])  # doctest: +ELLIPSIS
+    {
+      "$schema": "https://json-schema.org/draft/2020-12/schema",
+    ...
+    0
+    """
+    parser = argparse.ArgumentParser(
+        prog="python -m hierarchy.spec",
+        description="Print the JSON Schema of spec files (version "
+                    f"{SPEC_VERSION}).")
+    parser.add_argument("--write-schema", action="store_true",
+                        help=f"write it to {SCHEMA_PATH} instead")
+    args = parser.parse_args(argv)
+    text = json.dumps(spec_schema(), indent=2, ensure_ascii=False) + "\n"
+    if args.write_schema:
+        atomic_write_text(SCHEMA_PATH, text)
+        print(f"wrote {SCHEMA_PATH}")
+    else:
+        sys.stdout.write(text)
+    return 0
+
+
+if __name__ == "__main__":
+    sys.exit(main())
