@@ -27,6 +27,10 @@ from .solver import CONVERGED, FAILED, ITERATION_LIMIT, minimise
 #: A link sending less than this fraction of its noise power (or of its
 #: source's power, on a noiseless channel) counts as silent.
 SILENT_FRACTION = 1e-6
+#: A link sending less than this fraction of its noise power is tried switched off.
+FADING = 1.0
+#: Iterations between checks for links fading away.
+CHUNK = 300
 #: Budgets are met when used <= total * (1 + BUDGET_TOL).
 BUDGET_TOL = 1e-6
 
@@ -146,33 +150,62 @@ def _solve_prices(prob: Problem, opts: Options, starts=None):
         return probes[0], sum(o.iterations for o in probes), len(starts)
     best = min(usable, key=lambda o: o.f)
     iterations = sum(o.iterations for o in probes)
-    if best.status == ITERATION_LIMIT:
-        more, extra = _polish(prob, best.x, opts, opts.max_iter - best.iterations)
-    else:
-        more, extra = _polish(prob, best.x, opts, 0, first=best)
+    more, extra = _polish(prob, best.x, opts, max(opts.max_iter - best.iterations, 1))
     iterations += extra
     best = more if more.f <= best.f else best
     return best, iterations, len(starts)
 
 
-def _polish(prob: Problem, x0, opts: Options, max_iter: int, first=None):
-    """Minimise from ``x0``, then try to wake silent links or modes and carry
-    on from any point that wakes; returns the best outcome and iterations."""
-    best = first if first is not None else minimise(prob.value_and_grad, x0, max_iter=max(max_iter, 1),
-                                                    gtol=opts.gtol, ftol=opts.ftol)
-    iterations = 0 if first is not None else best.iterations
-    for _ in range(5):
+def _polish(prob: Problem, x0, opts: Options, max_iter: int):
+    """Minimise from ``x0`` in rounds of at most ``CHUNK`` iterations. Between
+    rounds, switch off links that are fading away; once converged, try to
+    wake silent links or modes. Returns the best outcome and the iterations."""
+    best, x, iterations, wakes = None, x0, 0, 0
+    while iterations < max_iter:
+        out = minimise(prob.value_and_grad, x, max_iter=min(CHUNK, max_iter - iterations),
+                       gtol=opts.gtol, ftol=opts.ftol)
+        iterations += out.iterations
+        if best is not None and not out.f <= best.f:
+            break
+        best = out
         if not np.isfinite(best.f):
             break
-        woken = _wake_silent(prob, best)
-        if woken is None:
+        moved = _switch_off_fading(prob, best)
+        if moved is None and best.status == CONVERGED and wakes < 8:
+            moved = _wake_silent(prob, best)
+            wakes += 1
+        if moved is None and best.status == CONVERGED:
             break
-        more = minimise(prob.value_and_grad, woken, max_iter=opts.max_iter, gtol=opts.gtol, ftol=opts.ftol)
-        iterations += more.iterations
-        if not more.f < best.f:
-            break
-        best = more
+        x = best.x if moved is None else moved
     return best, iterations
+
+
+def _switch_off_fading(prob: Problem, best):
+    """A link whose optimum is silence fades only slowly under any gradient
+    method (its sender and receiver gains shrink together, a flat valley).
+    Links far below their noise are switched off exactly, sender and
+    receiver side (for a prediction into a sensor, the residual's ``P``),
+    when that does not raise the objective: zero is then a stationary point
+    that the solver keeps."""
+    powers = _link_powers(prob, best.x)
+    theta = best.x.copy()
+    changed = False
+    for link in prob.spec.links:
+        sender = prob.sender_slices(link.id)
+        if not sender or powers[link.id] > FADING * _silence_floor(prob, link) / SILENT_FRACTION * link.dim:
+            continue
+        pair = f"{link.target}->{link.source}"
+        receivers = prob.receiver_slices(link.id)
+        if link.kind == "prediction" and prob.spec.is_sensor(link.target):
+            receivers = prob.slices(pair, "P")
+        trial = theta.copy()
+        for sl in sender + receivers:
+            trial[sl] = 0.0
+        if np.any(trial != theta):
+            f, _ = prob.value_and_grad(trial)
+            if np.isfinite(f) and f <= best.f + 1e-12 * max(1.0, abs(best.f)):
+                theta, changed = trial, True
+    return theta if changed else None
 
 
 def _loop_covariance(prob: Problem, theta):

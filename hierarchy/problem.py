@@ -124,14 +124,13 @@ class Problem:
             out[off:off + n] = factor * getattr(grad, kind)[owner][name].ravel()
         return J / self.reference, out / self.reference
 
-    def block_slices(self, owner: str) -> list:
-        """Slices of ``theta`` that belong to one link or area."""
+    def slices(self, owner: str, names: str = "MGSPK") -> list:
+        """Slices of ``theta`` holding the free gains ``names`` of one link or area."""
         return [slice(off, off + shape[0] * shape[1])
-                for kind, o, name, shape, factor, off in self.blocks if o == owner]
+                for kind, o, name, shape, factor, off in self.blocks if o == owner and name in names]
 
     def sender_slices(self, link_id: str) -> list:
-        return [slice(off, off + shape[0] * shape[1])
-                for kind, o, name, shape, factor, off in self.blocks if o == link_id and name in "GSP"]
+        return self.slices(link_id, "GSP")
 
     def sender_block(self, link_id: str):
         """``(slice, shape)`` of the free gain that forms a link's signal from
@@ -142,8 +141,7 @@ class Problem:
         return None
 
     def receiver_slices(self, link_id: str) -> list:
-        return [slice(off, off + shape[0] * shape[1])
-                for kind, o, name, shape, factor, off in self.blocks if o == link_id and name == "K"]
+        return self.slices(link_id, "K")
 
     # -- starting points ----------------------------------------------------
     def informed_start(self) -> Gains:
