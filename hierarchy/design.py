@@ -62,10 +62,10 @@ class Options:
     max_iter: int = 3000
     probe_iter: int = 60
     seed: int = 0
-    gtol: float = 1e-9
-    ftol: float = 1e-13
+    gtol: float = 1e-7
+    ftol: float = 1e-12
     budget_rounds: int = 40
-    budget_rtol: float = 1e-4
+    budget_rtol: float = 1e-3
 
 
 @dataclass
@@ -498,32 +498,50 @@ def design_budgets(spec: Spec, options: Options | None = None, start: Gains | No
 
 
 def _meet_budgets(prob: Problem, theta, groups, totals, mu):
-    """Bring every active budget (positive multiplier) to its total and every
-    budget under it, to BUDGET_TOL, by scaling the senders of its links (and
-    their receivers the other way): the multiplier search only gets within
-    ``budget_rtol``, and a multiplier's budget is spent in full at an optimum."""
+    """Spend every active budget (positive multiplier) in full and keep every
+    budget within BUDGET_TOL, by scaling each link's sender gains by ``c_l``
+    (and its receiver by ``1/c_l``). The multiplier search only gets within
+    ``budget_rtol``. With ``c_l^2 = 1 + sum of alpha_g over the active groups
+    holding l``, the group powers are linear in ``alpha``: a small linear
+    solve per round, a few rounds because powers are only nearly quadratic
+    in the scale."""
     theta = theta.copy()
     links = prob.spec.links
-    for _ in range(30):
+    member = np.zeros((len(groups), len(links)))
+    for g, idx in enumerate(groups):
+        member[g, idx] = 1.0
+    for _ in range(12):
         powers = np.array(list(_link_powers(prob, theta).values()))
-        used = np.array([powers[idx].sum() for idx in groups])
-        over = used > totals * (1 + 0.1 * BUDGET_TOL)
-        short = (mu > 0) & (used < totals * (1 - 0.1 * BUDGET_TOL)) & (used > 0)
-        if not np.any(over | short):
+        used = member @ powers
+        active = (mu > 0) | (used > totals)
+        off = np.abs(used - totals) > 0.1 * BUDGET_TOL * totals
+        if not np.any(active & off):
             break
-        factor = np.full(len(links), np.inf)
-        for g in range(len(groups)):
-            if over[g] or short[g] or mu[g] > 0:
-                c = np.sqrt(totals[g] / used[g]) * (1 - 0.05 * BUDGET_TOL) if used[g] > 0 else 1.0
-                factor[groups[g]] = np.minimum(factor[groups[g]], c)
-        for i, l in enumerate(links):
-            if not np.isfinite(factor[i]) or factor[i] == 1.0:
-                continue
-            for sl in prob.sender_slices(l.id):
-                theta[sl] *= factor[i]
-            for sl in prob.receiver_slices(l.id):
-                theta[sl] /= factor[i]
+        rows = member[active]
+        alpha = np.linalg.lstsq((rows * powers) @ rows.T, (totals - used)[active], rcond=None)[0]
+        factor = np.sqrt(np.clip(1.0 + rows.T @ alpha, 1e-4, None))
+        _scale_links(prob, theta, factor)
+    # Safety: whatever the rounds left, no budget may be exceeded.
+    for _ in range(5):
+        powers = np.array(list(_link_powers(prob, theta).values()))
+        used = member @ powers
+        if np.all(used <= totals * (1 + 0.5 * BUDGET_TOL)):
+            break
+        factor = np.ones(len(links))
+        for g in np.flatnonzero(used > totals):
+            factor[groups[g]] = np.minimum(factor[groups[g]], np.sqrt(totals[g] / used[g]) * (1 - 0.1 * BUDGET_TOL))
+        _scale_links(prob, theta, factor)
     return theta
+
+
+def _scale_links(prob: Problem, theta, factor):
+    for link, c in zip(prob.spec.links, factor):
+        if c == 1.0:
+            continue
+        for sl in prob.sender_slices(link.id):
+            theta[sl] *= c
+        for sl in prob.receiver_slices(link.id):
+            theta[sl] /= c
 
 
 # ---------------------------------------------------------------------------
