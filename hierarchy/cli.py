@@ -106,6 +106,8 @@ def cmd_simulate(args) -> int:
                  for r in rows]))
     print(f"\n{sim.chains} chains x {sim.steps} steps (burn-in {sim.burn_in}), "
           f"{sim.batches} batch means per chain, seed {sim.seed}")
+    for w in sim.warnings:
+        print(f"warning: {w}", file=sys.stderr)
     if args.json:
         write_json(args.json, {"exact": scores.to_dict(), "simulated": sim.to_dict()})
         print(f"wrote {args.json}")

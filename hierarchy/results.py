@@ -167,6 +167,12 @@ def scores_text(spec, scores, gains=None, result=None) -> str:
     if result is not None:
         header += ["budget share", "gain", "note"]
     out.append(table(header, link_rows))
+    if spec.budgets and result is None:
+        rows = []
+        for b in spec.budgets:
+            used = sum(scores.links[lid].power for lid in b.links)
+            rows.append([b.name, fmt(b.total), fmt(used), "yes" if used <= b.total * (1 + 1e-6) else "NO (over)"])
+        out.append(table(["budget", "total", "used by these gains", "within"], rows))
     out.append(
         f"objective {fmt(scores.objective, 6)} = weighted error {fmt(scores.weighted_error, 6)}"
         f" + energy {fmt(scores.energy_cost, 6)} + activity {fmt(scores.activity_cost, 6)}"
