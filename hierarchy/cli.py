@@ -73,16 +73,15 @@ def cmd_check(args) -> int:
 
 def cmd_evaluate(args) -> int:
     from .evaluate import evaluate
+    from .gains import with_pins
     from .results import scores_text, scores_to_dict, write_json
 
     c = _load(args.spec)
-    gains = _gains(c, args.gains)
-    from .gains import with_pins
-
+    gains = with_pins(c.spec, _gains(c, args.gains))
     scores = evaluate(c.spec, gains)
-    print(scores_text(c.spec, scores, with_pins(c.spec, gains)))
+    print(scores_text(c.spec, scores, gains))
     if args.json:
-        write_json(args.json, scores_to_dict(c.spec, scores, with_pins(c.spec, gains)))
+        write_json(args.json, scores_to_dict(c.spec, scores, gains))
         print(f"\nwrote {args.json}")
     _print_warnings(c)
     return 0

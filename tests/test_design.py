@@ -149,8 +149,12 @@ def test_shadow_price_is_slope_of_optimal_objective():
     assert mid.budgets["b"].shadow_price == pytest.approx(-slope, rel=0.02)
 
 
-def loop_spec(pred_price=0.02, pred_noise=0.05, res_price=0.02, res_noise=0.05, budget=None):
-    text = f"""
+def loop_spec(pred_price=0.02, pred_noise=0.05, res_price=0.02, res_noise=0.05, res_pin=""):
+    """One sensor, one area, a residual up and a prediction down (a prediction
+    with neither noise nor price when ``pred_noise`` is None)."""
+    pred = f", noise: {pred_noise}, price: {pred_price}" if pred_noise is not None else ""
+    pin = f", pin: {res_pin}" if res_pin else ""
+    return parse_spec(f"""
 spec: 1
 world:
   states:
@@ -160,10 +164,9 @@ sensors:
 areas:
   a: {{tracks: t}}
 links:
-  - {{from: s, to: a, kind: residual, noise: {res_noise}, price: {res_price}}}
-  - {{from: a, to: s, kind: prediction, noise: {pred_noise}, price: {pred_price}}}
-"""
-    return parse_spec(text)
+  - {{from: s, to: a, kind: residual, noise: {res_noise}, price: {res_price}{pin}}}
+  - {{from: a, to: s, kind: prediction{pred}}}
+""")
 
 
 def test_prediction_power_falls_to_silence_as_its_price_grows():
@@ -190,19 +193,7 @@ def test_very_noisy_prediction_channel_goes_silent():
 def test_free_noiseless_predictions_shrink_the_residual():
     # Fact of the trade (common practice, no source): with free, noiseless
     # predictions, the residual sent up carries less power than the raw signal.
-    spec = parse_spec("""
-spec: 1
-world:
-  states:
-    t: {dim: 1, dynamics: 0.95, noise: 0.1}
-sensors:
-  s: {observes: {t: 1}, noise: 0.2}
-areas:
-  a: {tracks: t}
-links:
-  - {from: s, to: a, kind: residual, noise: 0.05, price: 0.02}
-  - {from: a, to: s, kind: prediction}
-""")
+    spec = loop_spec(pred_noise=None)
     res = design_prices(spec, FAST)
     raw = 0.1 / (1 - 0.95 ** 2) + 0.2  # Var y = q/(1-a^2) + r (AR(1) variance)
     assert res.scores.links["s->a"].power < 0.5 * raw
@@ -291,19 +282,7 @@ links:
 
 
 def test_pinned_textbook_circuit_scored_beside_the_optimum():
-    spec = parse_spec("""
-spec: 1
-world:
-  states:
-    t: {dim: 1, dynamics: 0.95, noise: 0.1}
-sensors:
-  s: {observes: {t: 1}, noise: 0.2}
-areas:
-  a: {tracks: t}
-links:
-  - {from: s, to: a, kind: residual, noise: 0.05, price: 0.02, pin: {S: 1, P: 1}}
-  - {from: a, to: s, kind: prediction, noise: 0.05, price: 0.02}
-""")
+    spec = loop_spec(res_pin="{S: 1, P: 1}")
     res = design(spec, FAST)
     assert np.allclose(res.gains.links["s->a"]["S"], 1) and np.allclose(res.gains.links["s->a"]["P"], 1)
     assert res.reference is not None
