@@ -294,7 +294,7 @@ def _best_receiver_step(prob: Problem, theta, receiver_slices, f0):
     return None
 
 
-def _silence_reasons(prob: Problem, theta, powers) -> dict:
+def _silence_reasons(prob: Problem, powers) -> dict:
     """For each silent link, the numbers that say why: what a small signal
     would buy per unit of power, against what a unit of power costs."""
     out = {}
@@ -342,19 +342,20 @@ def design_prices(spec: Spec, options: Options | None = None, start: Gains | Non
         base = with_pins(spec, start)
         starts = [prob.pack(base)]
     best, iterations, nstarts = _solve_prices(prob, opts, starts)
-    return _finish(prob, best, iterations, nstarts, time.perf_counter() - t0, "price")
+    return _finish(prob, best.x, best, iterations, nstarts, time.perf_counter() - t0, "price")
 
 
-def _finish(prob: Problem, best, iterations, nstarts, seconds, form) -> DesignResult:
+def _finish(prob: Problem, theta, best, iterations, nstarts, seconds, form) -> DesignResult:
+    """Score ``theta`` exactly under the spec's own prices and wrap it up."""
     spec = prob.spec
-    gains = prob.unpack(best.x)
+    gains = prob.unpack(theta)
     status, message = best.status, best.message
     if not np.isfinite(best.f):
         raise_unstable_pins(prob)
         status, message = FAILED, "no stable design was found from any start"
     scores = score(prob.layout, gains)
     powers = {k: v.power for k, v in scores.links.items()}
-    silent = _silence_reasons(prob, best.x, powers)
+    silent = _silence_reasons(prob, powers)
     return DesignResult(spec, status, message, gains, scores, scores.objective, form,
                         iterations=iterations, restarts=nstarts, evaluations=prob.evaluations,
                         seconds=seconds, grad_norm=best.grad_norm, silent=silent)
@@ -384,7 +385,8 @@ def _link_model(power, noise, price):
 
 
 def _allocate(models, base_prices, groups, totals):
-    """Convex allocation of power to links (CVXPY); returns (powers, duals)."""
+    """Convex allocation of power to links (CVXPY); returns the duals of the
+    budget rows (the next multipliers), or ``None`` if the solve failed."""
     import cvxpy as cp
 
     n = len(models)
@@ -402,8 +404,8 @@ def _allocate(models, base_prices, groups, totals):
     except cp.SolverError:
         prob.solve(solver=cp.SCS, eps=1e-9)
     if P.value is None:
-        return None, None
-    return np.maximum(P.value, 0.0), np.array([max(float(c.dual_value), 0.0) for c in cons])
+        return None
+    return np.array([max(float(c.dual_value), 0.0) for c in cons])
 
 
 def design_budgets(spec: Spec, options: Options | None = None, start: Gains | None = None) -> DesignResult:
@@ -422,8 +424,7 @@ def design_budgets(spec: Spec, options: Options | None = None, start: Gains | No
     """
     opts = options or Options()
     t0 = time.perf_counter()
-    layout_links = [l.id for l in spec.links]
-    index = {lid: i for i, lid in enumerate(layout_links)}
+    index = {l.id: i for i, l in enumerate(spec.links)}
     groups = [np.array([index[lid] for lid in b.links]) for b in spec.budgets]
     totals = np.array([b.total for b in spec.budgets], dtype=float)
     base = np.array([l.price for l in spec.links], dtype=float)
@@ -441,22 +442,21 @@ def design_budgets(spec: Spec, options: Options | None = None, start: Gains | No
     prob_ref = prob.reference
     mu = mu * prob_ref  # objective and budget in their own units
     prob.prices = prices_for(mu)
-    best, iterations, nstarts = _solve_prices(prob, opts)
-    rounds = 0
+    starts = None if start is None else [prob.pack(with_pins(spec, start))]
+    best, iterations, nstarts = _solve_prices(prob, opts, starts)
     message = ""
     history = []
-    for rounds in range(1, opts.budget_rounds + 1):
+    for _ in range(opts.budget_rounds):
         powers = np.array(list(_link_powers(prob, best.x).values()))
         used = np.array([powers[idx].sum() for idx in groups])
         history.append((mu.copy(), used.copy()))
-        active_ok = np.all(np.abs(used - totals) <= opts.budget_rtol * np.maximum(totals, 1e-300))
-        slack_ok = np.all((used <= totals * (1 + opts.budget_rtol)) &
-                          ((mu <= 1e-12 * prob_ref) | (np.abs(used - totals) <= opts.budget_rtol * totals)))
-        if active_ok or slack_ok:
+        # KKT: every budget met; a budget with a positive multiplier spent in full.
+        spent = np.abs(used - totals) <= opts.budget_rtol * totals
+        if np.all((used <= totals * (1 + opts.budget_rtol)) & ((mu <= 1e-12 * prob_ref) | spent)):
             break
         prices = prices_for(mu)
         models = [(_link_model(powers[i], noise[i], prices[i]), noise[i]) for i in range(len(powers))]
-        target, new_mu = _allocate(models, base, groups, totals)
+        new_mu = _allocate(models, base, groups, totals)
         if new_mu is None:
             message = "the convex allocation step failed"
             break
@@ -477,12 +477,8 @@ def design_budgets(spec: Spec, options: Options | None = None, start: Gains | No
         message = f"budgets not met within {opts.budget_rtol:g} after {opts.budget_rounds} rounds"
 
     theta = _meet_budgets(prob, best.x, groups, totals, mu)
-    gains = prob.unpack(theta)
-    spec_scores = score(prob.layout, gains)  # under the spec's own prices
-    result = _finish(prob, best, iterations, nstarts, time.perf_counter() - t0, "budget")
-    result.gains, result.scores, result.objective = gains, spec_scores, spec_scores.objective
-    powers = {k: v.power for k, v in spec_scores.links.items()}
-    result.silent = _silence_reasons(prob, theta, powers)
+    result = _finish(prob, theta, best, iterations, nstarts, time.perf_counter() - t0, "budget")
+    powers = {k: v.power for k, v in result.scores.links.items()}
     for b, idx, m in zip(spec.budgets, groups, mu):
         used = float(sum(powers[spec.links[i].id] for i in idx))
         result.budgets[b.name] = BudgetUse(b.name, b.total, used, float(m), b.links)
