@@ -121,6 +121,10 @@ def cmd_design(args) -> int:
 
     c = _load(args.spec)
     start = _gains(c, args.start)
+    if args.plot:  # a bad picture path is refused before the design runs
+        from .render import check_path
+
+        check_path(args.plot)
     opts = Options(restarts=args.restarts, max_iter=args.max_iter, seed=args.seed)
     result = c.design(opts, start=start, compare_unpinned=not args.no_reference)
     print(result_text(result))
@@ -131,8 +135,26 @@ def cmd_design(args) -> int:
         note = f"design of '{c.spec.name}' ({result.form} form, {result.status})"
         save_gains(args.gains, result.gains, c.spec, note=note)
         print(f"wrote {args.gains}")
+    if args.plot:
+        from .render import save_circuit
+
+        save_circuit(result, args.plot)
+        print(f"wrote {args.plot}")
     _print_warnings(c)
     return 0 if result.status != "failed" else 1
+
+
+def cmd_render(args) -> int:
+    import os
+
+    from .render import read_result, save_circuit
+
+    out = args.output or os.path.splitext(args.result)[0] + ".png"
+    data = read_result(args.result)
+    spec = _load(args.spec).spec if args.spec else None
+    save_circuit(data, out, spec=spec, width_by=args.width_by)
+    print(f"wrote {out}")
+    return 0
 
 
 def build_parser() -> argparse.ArgumentParser:
@@ -164,6 +186,7 @@ def build_parser() -> argparse.ArgumentParser:
     s.add_argument("spec")
     s.add_argument("--json", metavar="PATH", help="write the full result as JSON")
     s.add_argument("--gains", metavar="PATH", help="write the design as a gains file")
+    s.add_argument("--plot", metavar="PATH", help="draw the designed circuit (.png, .svg or .pdf)")
     s.add_argument("--start", metavar="PATH", help="warm start from a gains file")
     s.add_argument("--restarts", type=int, default=4, help="starting points tried (default 4)")
     s.add_argument("--max-iter", type=int, default=3000, help="solver iteration limit (default 3000)")
@@ -171,6 +194,20 @@ def build_parser() -> argparse.ArgumentParser:
     s.add_argument("--no-reference", action="store_true",
                    help="with pinned gains, skip designing the all-free circuit for comparison")
     s.set_defaults(run=cmd_design)
+
+    s = sub.add_parser("render", help="draw a designed circuit from its result JSON",
+                       description="Draw a result file (`hierarchy design SPEC --json RESULT.json`) as a "
+                                   "layered diagram: sensors at the bottom, areas by level, link widths by "
+                                   "power. The format follows the output's extension: .png, .svg or .pdf.")
+    s.add_argument("result", metavar="RESULT.json")
+    s.add_argument("-o", "--output", metavar="PATH",
+                   help="picture to write (.png, .svg or .pdf); default: the result's name with .png, "
+                        "in the same folder")
+    s.add_argument("--width-by", choices=("power", "share"), default="power",
+                   help="link width proportional to power (default) or to share of budget")
+    s.add_argument("--spec", metavar="SPEC", help="the spec the result came from (optional; the result "
+                                                  "alone is enough)")
+    s.set_defaults(run=cmd_render)
     return p
 
 

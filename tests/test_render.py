@@ -1,0 +1,212 @@
+"""Circuit drawings: files in every format, the visual encoding read back from
+the artists (never from pixels), and the `render` / `design --plot` commands."""
+
+import json
+import subprocess
+import sys
+from pathlib import Path
+
+import numpy as np
+import pytest
+
+from hierarchy.circuit import build_graph
+from hierarchy.cli import main
+from hierarchy.errors import InputError
+from hierarchy.render import (PREDICTION_COLOUR, RESIDUAL_COLOUR, SILENT_COLOUR, draw_circuit, result_graph,
+                              save_circuit)
+from hierarchy.spec import load_spec
+
+ROOT = Path(__file__).resolve().parents[1]
+EXAMPLES = sorted(p.stem for p in (ROOT / "specs").glob("*.yaml"))
+MAGIC = {".png": b"\x89PNG\r\n\x1a\n", ".svg": b"<svg", ".pdf": b"%PDF"}
+
+
+def run(*args):
+    """The command as a user runs it (a subprocess, so a traceback would show)."""
+    return subprocess.run([sys.executable, "-m", "hierarchy", *map(str, args)],
+                          capture_output=True, text=True, cwd=ROOT, timeout=120)
+
+
+def fake_result(name, powers=None, silent=(), budgets=None):
+    """A result dict in the `hierarchy design --json` layout for an example spec,
+    with chosen powers (no design run: these tests are about the drawing)."""
+    spec = load_spec(ROOT / "specs" / f"{name}.yaml")
+    powers = powers or {l.id: 0.1 * (i + 1) for i, l in enumerate(spec.links)}
+    budgets = budgets if budgets is not None else {b.name: {"total": b.total, "links": list(b.links)}
+                                                   for b in spec.budgets}
+    links = {}
+    for l in spec.links:
+        p = 0.0 if l.id in silent else powers[l.id]
+        noise = float(np.trace(l.noise))
+        links[l.id] = {
+            "kind": l.kind, "power": p, "noise_power": noise, "snr": p / noise if noise else None,
+            "bits": 0.5 * np.log2(1 + p / noise) if noise else None, "price": l.price,
+            "silent": l.id in silent, "silent_reason": "test" if l.id in silent else None,
+            "share_of_budget": {b: p / row["total"] for b, row in budgets.items() if l.id in row["links"]},
+        }
+    areas = {a.name: {"error": 0.1 if a.has_target else None, "relay": not a.has_target} for a in spec.areas}
+    return {"format": "hierarchy-result", "version": 1, "spec": spec.name, "form": "price",
+            "status": "converged", "objective": 1.25, "areas": areas, "links": links,
+            "budgets": {b: {**row, "used": 0.5, "shadow_price": 0.01, "met": True} for b, row in budgets.items()}}
+
+
+@pytest.mark.parametrize("ext", [".png", ".svg", ".pdf"])
+def test_each_format_is_written_and_non_empty(tmp_path, ext):
+    path = tmp_path / f"circuit{ext}"
+    save_circuit(fake_result("two-level"), path)
+    data = path.read_bytes()
+    assert len(data) > 1000
+    head = data[:400] if ext == ".svg" else data[:len(MAGIC[ext])]
+    assert MAGIC[ext] in head
+    assert [p.name for p in tmp_path.iterdir()] == [path.name]  # no temporary file left behind
+
+
+@pytest.mark.parametrize("name", EXAMPLES)
+def test_widths_follow_the_powers_order(name):
+    spec = load_spec(ROOT / "specs" / f"{name}.yaml")
+    rng = np.random.default_rng(3)
+    powers = {l.id: float(p) for l, p in zip(spec.links, rng.permutation(len(spec.links)) * 0.3 + 0.05)}
+    fig = draw_circuit(fake_result(name, powers))
+    width = {lid: a.get_linewidth() for lid, a in fig.hierarchy_links.items()}
+    assert set(width) == set(powers)
+    by_power = sorted(powers, key=powers.get)
+    widths = [width[lid] for lid in by_power]
+    assert all(a < b for a, b in zip(widths, widths[1:])), (by_power, widths)
+
+
+def test_widths_follow_budget_shares():
+    budgets = {"upward": {"total": 2.0, "links": ["camera-view->fused", "pad-view->fused", "fused->camera-view"]}}
+    powers = {"camera->camera-view": 5.0, "pad->pad-view": 4.0,  # outside the budget: thinnest
+              "camera-view->fused": 0.3, "pad-view->fused": 1.2, "fused->camera-view": 0.5}
+    fig = draw_circuit(fake_result("two-senses", powers, budgets=budgets), width_by="share")
+    w = {lid: a.get_linewidth() for lid, a in fig.hierarchy_links.items()}
+    assert w["pad-view->fused"] > w["fused->camera-view"] > w["camera-view->fused"] > w["camera->camera-view"]
+    assert w["camera->camera-view"] == w["pad->pad-view"]
+    assert "60% of upward" in fig.hierarchy_labels["pad-view->fused"].get_text()
+
+
+def test_share_widths_need_budgets():
+    with pytest.raises(InputError, match="no budgets"):
+        draw_circuit(fake_result("two-level"), width_by="share")
+
+
+def test_silent_links_are_thin_grey_and_dashed_kinds_differ():
+    fig = draw_circuit(fake_result("two-level", silent={"station-view->probe"}))
+    arrows = fig.hierarchy_links
+    silent = arrows["station-view->probe"]
+    offset, dashes = silent.get_linestyle()
+    assert len(dashes) == 2  # on, off: dashed
+    assert np.allclose(silent.get_edgecolor()[:3], np.array([0x99, 0x99, 0x99]) / 255)
+    assert silent.get_linewidth() < min(a.get_linewidth() for lid, a in arrows.items() if a is not silent)
+    residual, prediction = arrows["probe->station-view"], arrows["upstream-view->station-view"]
+    assert residual.get_linestyle() == "solid"
+    assert len(prediction.get_linestyle()[1]) == 4  # dash-dot
+    from matplotlib.colors import to_rgb
+    assert np.allclose(residual.get_edgecolor()[:3], to_rgb(RESIDUAL_COLOUR))
+    assert np.allclose(prediction.get_edgecolor()[:3], to_rgb(PREDICTION_COLOUR))
+    assert SILENT_COLOUR not in (RESIDUAL_COLOUR, PREDICTION_COLOUR)
+    assert fig.hierarchy_labels["station-view->probe"].get_text().startswith("silent")
+
+
+def test_pair_bows_apart_and_arrows_end_outside_the_boxes():
+    from matplotlib.path import Path
+
+    fig = draw_circuit(fake_result("two-level"))
+    fig.canvas.draw()
+    arrows, boxes = fig.hierarchy_links, fig.hierarchy_nodes
+
+    def path(lid):  # the drawn curve (shaft and head) in data coordinates
+        p = arrows[lid].get_path()
+        return p.vertices if p.codes is None else p.vertices[p.codes != Path.CLOSEPOLY]
+
+    up, down = path("probe->station-view"), path("station-view->probe")
+    # Both ends share one vertical line, so the two curves must lie on opposite sides of it.
+    centre = boxes["probe"].get_x() + boxes["probe"].get_width() / 2
+    assert up[:, 0].mean() > centre + 0.05 and down[:, 0].mean() < centre - 0.05
+    for lid, arrow in arrows.items():
+        tip = path(lid)
+        target = boxes[lid.split("->")[1]]
+        x0, y0, w, h = target.get_x(), target.get_y(), target.get_width(), target.get_height()
+        inside = ((tip[:, 0] > x0 + 0.02) & (tip[:, 0] < x0 + w - 0.02)
+                  & (tip[:, 1] > y0 + 0.02) & (tip[:, 1] < y0 + h - 0.02))
+        assert not inside.any(), f"{lid} is drawn under its target's box"
+
+
+def test_labels_title_and_legend():
+    fig = draw_circuit(fake_result("two-level"))
+    label = fig.hierarchy_labels["probe->station-view"].get_text()
+    assert "P 0.1" in label and "SNR 2.5" in label and "bit/step" in label
+    title = fig.axes[0].get_title()
+    assert "river gauge, two levels" in title and "converged" in title and "objective 1.25" in title
+    legend = [t.get_text() for t in fig.axes[0].get_legend().get_texts()]
+    assert any("residual" in t for t in legend) and any("prediction" in t for t in legend)
+    assert any("silent" in t for t in legend)
+
+
+def test_many_areas_drop_link_labels():
+    areas = {f"a{i}": {"error": 0.1, "relay": False} for i in range(12)}
+    links = {"eye->a0": {"kind": "residual", "power": 1.0}}
+    links.update({f"a{i}->a{i + 1}": {"kind": "residual", "power": 0.1 * i} for i in range(11)})
+    fig = draw_circuit({"format": "hierarchy-result", "spec": "chain", "areas": areas, "links": links})
+    assert fig.hierarchy_labels == {} and len(fig.hierarchy_links) == 12
+    assert not any("bit/step" in t.get_text() for t in fig.axes[0].texts)
+
+
+@pytest.mark.parametrize("name", EXAMPLES)
+def test_levels_from_the_result_alone_match_the_spec(name):
+    spec = load_spec(ROOT / "specs" / f"{name}.yaml")
+    from_spec = {n: d.get("level") for n, d in build_graph(spec).nodes(data=True)}
+    from_json = {n: d.get("level") for n, d in result_graph(fake_result(name)).nodes(data=True)}
+    assert from_json == from_spec
+
+
+def test_result_from_another_spec_is_refused():
+    with pytest.raises(InputError, match="does not fit the spec"):
+        draw_circuit(fake_result("two-level"), spec=load_spec(ROOT / "specs/two-senses.yaml"))
+
+
+def test_unknown_extension_is_refused(tmp_path):
+    result = tmp_path / "r.json"
+    result.write_text(json.dumps(fake_result("two-level")))
+    keep = tmp_path / "old.jpg"
+    keep.write_bytes(b"old picture")
+    with pytest.raises(InputError) as err:
+        save_circuit(fake_result("two-level"), keep)
+    assert str(keep) in str(err.value) and ".png" in err.value.fix
+    out = run("render", result, "-o", keep)
+    assert out.returncode == 2
+    assert "Traceback" not in out.stderr and "old.jpg" in out.stderr and "fix:" in out.stderr
+    assert keep.read_bytes() == b"old picture"
+
+
+@pytest.mark.parametrize("content, words", [("{not json", "not valid JSON"),
+                                            ('{"format": "hierarchy-gains"}', "not a hierarchy result"),
+                                            ("[1, 2]", "not a hierarchy result")])
+def test_bad_result_file_exits_2(tmp_path, capsys, content, words):
+    path = tmp_path / "r.json"
+    path.write_text(content)
+    assert main(["render", str(path)]) == 2
+    err = capsys.readouterr().err
+    assert words in err and str(path) in err
+    assert not (tmp_path / "r.png").exists()
+
+
+def test_design_then_render_end_to_end(tmp_path):
+    result, svg = tmp_path / "two-level.json", tmp_path / "designed.svg"
+    out = run("design", "specs/two-level.yaml", "--json", result, "--plot", svg, "--restarts", 1)
+    assert out.returncode == 0, out.stderr
+    assert b"<svg" in svg.read_bytes()[:400]
+    out = run("render", result)  # default output: beside the result, same stem
+    assert out.returncode == 0, out.stderr
+    assert (tmp_path / "two-level.png").read_bytes().startswith(MAGIC[".png"])
+    pdf = tmp_path / "c.pdf"
+    assert main(["render", str(result), "-o", str(pdf), "--spec", str(ROOT / "specs/two-level.yaml")]) == 0
+    assert pdf.read_bytes().startswith(MAGIC[".pdf"])
+
+
+def test_check_does_not_import_matplotlib():
+    code = ("import sys; from hierarchy.cli import main; import hierarchy.render; "
+            "assert main(['check', 'specs/two-level.yaml']) == 0; "
+            "assert 'matplotlib' not in sys.modules, 'matplotlib imported'")
+    out = subprocess.run([sys.executable, "-c", code], capture_output=True, text=True, cwd=ROOT, timeout=60)
+    assert out.returncode == 0, out.stderr
