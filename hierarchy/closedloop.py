@@ -15,11 +15,28 @@ Omega)`` where ``Sigma`` solves ``Sigma = Phi Sigma Phi' + Gamma Omega Gamma'``.
 Timing (model.md): predictions are formed from ``z(t)``, residuals from sensor
 values at ``t`` and the predictions received at ``t``, and areas move on to
 ``t+1``.
+
+Those dense rows over ``q`` are what a simulation needs. The exact
+evaluation works on a compact form instead (:class:`Structure`): with every
+link's signal rows stacked (``m`` rows in all, in the order of the link
+noises) and the node signals ``u = [y_sensors; z]``,
+
+* ``Gs`` (``m x dim u``) holds each link's sender gain (``G`` or ``S``),
+* ``Pm`` (``m x m``) each residual's ``P`` on its paired prediction's rows,
+* ``Km`` (``dim z x m``) each receiver's ``K``, ``Mz`` the areas' ``M``;
+
+then what arrives is ``R = (I - Pm)(Gs U + E)`` (``E`` picks the link
+noises; ``Pm`` maps prediction rows into residual rows only, so ``Pm^2 = 0``
+and ``(I + Pm)^-1 = I - Pm``), what is sent is ``R - E``, and the areas move
+on as ``z(t+1) = Mz z + Km R q``. Every piece is a sum of small blocks, so
+the link count enters only through sparse products and index gathers, never
+through dense ``(nq x nq)`` matrices.
 """
 
 from __future__ import annotations
 
 from dataclasses import dataclass
+from functools import cached_property
 
 import numpy as np
 
@@ -101,15 +118,6 @@ class Layout:
         for i in range(1, L + 1):
             A_aug[i * n:(i + 1) * n, (i - 1) * n:i * n] = np.eye(n)
         self.A_aug = A_aug
-        self.Omega = np.zeros((self.nnu, self.nnu))
-        off = self.nxi
-        self.Omega[self.w_slice.start - off:self.w_slice.stop - off, self.w_slice.start - off:self.w_slice.stop - off] = world.Q
-        for s in spec.sensors:
-            sl = self.sensor_noise[s.name]
-            self.Omega[sl.start - off:sl.stop - off, sl.start - off:sl.stop - off] = s.noise
-        for l in spec.links:
-            sl = link_pos[l.id]
-            self.Omega[sl.start - off:sl.stop - off, sl.start - off:sl.stop - off] = l.noise
         # Output map of every node (what u_b is, as rows over q).
         self.output = {}
         for s in spec.sensors:
@@ -137,6 +145,56 @@ class Layout:
         self.price = np.array([l.price for l in spec.links], dtype=float)
         self.weight = {a.name: a.weight for a in spec.areas}
         self.activity_price = {a.name: a.activity_price for a in spec.areas}
+        # The flat gain vector: every block (pinned or free) in a fixed order,
+        # so the exact evaluation reads gains by index instead of by name.
+        self.gain_slots = {}
+        pos = 0
+        for kind in ("areas", "links"):
+            for owner, blocks in self.shapes[kind].items():
+                for name, shape in blocks.items():
+                    self.gain_slots[(owner, name)] = (pos, shape)
+                    pos += shape[0] * shape[1]
+        self.n_gains = pos
+
+    @cached_property
+    def Omega(self) -> np.ndarray:
+        """Covariance of ``nu`` (dense; only simulation and plain reference
+        computations need it, so it is built on first use)."""
+        Omega = np.zeros((self.nnu, self.nnu))
+        off = self.nxi
+        blocks = [(self.w_slice, self.spec.world.Q)]
+        blocks += [(self.sensor_noise[s.name], s.noise) for s in self.spec.sensors]
+        blocks += [(ll.noise, l.noise) for ll, l in zip(self.links, self.spec.links)]
+        for sl, cov in blocks:
+            Omega[sl.start - off:sl.stop - off, sl.start - off:sl.stop - off] = cov
+        return Omega
+
+    @cached_property
+    def structure(self) -> "Structure":
+        """The compact form used by the exact evaluation (built on first use)."""
+        return Structure(self)
+
+    def flatten(self, gains: Gains) -> np.ndarray:
+        """Complete ``gains`` as one vector in the order of ``gain_slots``.
+
+        Examples
+        --------
+        >>> lay.unflatten(lay.flatten(gains)).links["eye->v1"]["K"]   # doctest: +SKIP
+        array([[0.5]])
+        """
+        out = np.empty(self.n_gains)
+        for (owner, name), (off, shape) in self.gain_slots.items():
+            table = gains.links if "->" in owner else gains.areas
+            out[off:off + shape[0] * shape[1]] = np.asarray(table[owner][name], dtype=float).ravel()
+        return out
+
+    def unflatten(self, vec: np.ndarray) -> Gains:
+        """The :class:`~hierarchy.gains.Gains` that a flat vector holds."""
+        g = Gains()
+        for (owner, name), (off, shape) in self.gain_slots.items():
+            table = g.links if "->" in owner else g.areas
+            table.setdefault(owner, {})[name] = np.array(vec[off:off + shape[0] * shape[1]]).reshape(shape)
+        return g
 
     def state_rows(self, area: str) -> np.ndarray:
         sl = self.area_slice[area]
@@ -226,3 +284,233 @@ def assemble(layout: Layout, gains: Gains) -> ClosedLoop:
         if ll.target_is_area:
             Psi[layout.area_slice[ll.target]] += gains.links[ll.id]["K"] @ received[ll.index]
     return ClosedLoop(layout, Psi[:, :nxi], Psi[:, nxi:], Psi, sent, received)
+
+
+# ---------------------------------------------------------------------------
+# The compact form (see the module docstring)
+
+
+@dataclass(frozen=True)
+class Entries:
+    """Where the entries of one kind of gain sit: ``rows`` and ``cols`` in
+    its global matrix, ``at`` in the flat gain vector (one per entry)."""
+
+    rows: np.ndarray
+    cols: np.ndarray
+    at: np.ndarray
+
+    @staticmethod
+    def of(blocks) -> "Entries":
+        """Entries of blocks given as ``(row0, col0, at0, (h, w))``, each
+        stored row by row from ``at0`` in the flat vector."""
+        rows, cols, at = [np.zeros(0, int)], [np.zeros(0, int)], [np.zeros(0, int)]
+        for r0, c0, a0, (h, w) in blocks:
+            rows.append(r0 + np.repeat(np.arange(h), w))
+            cols.append(c0 + np.tile(np.arange(w), h))
+            at.append(a0 + np.arange(h * w))
+        return Entries(np.concatenate(rows), np.concatenate(cols), np.concatenate(at))
+
+
+class SparseProduct:
+    """Products ``A @ X`` with a matrix ``A`` known by its entries (row,
+    column), whose values change from call to call.
+
+    Small products are a gather of the rows of ``X`` and a sorted segment
+    sum; large ones go to one scipy CSR matrix built here and refilled in
+    place (building a scipy.sparse object per call would cost more than the
+    small products themselves, and the segment sum is slower than scipy's
+    compiled kernel on large ones).
+
+    Examples
+    --------
+    >>> A = SparseProduct(np.array([0, 1, 1]), np.array([1, 0, 1]), (2, 2))
+    >>> A.matmul(np.array([2.0, 3.0, 4.0]), np.eye(2))
+    array([[0., 2.],
+           [3., 4.]])
+    """
+
+    #: Above this many multiplications a product goes to the CSR kernel.
+    CSR_WORK = 20_000
+
+    def __init__(self, rows: np.ndarray, cols: np.ndarray, shape):
+        import scipy.sparse as sp
+
+        self.order = np.lexsort((cols, rows))
+        self.cols = cols[self.order]
+        self.targets, self.starts = np.unique(rows[self.order], return_index=True)
+        self.shape = shape
+        indptr = np.searchsorted(rows[self.order], np.arange(shape[0] + 1))
+        self.csr = sp.csr_matrix((np.zeros(len(cols)), self.cols, indptr), shape=shape)
+
+    def matmul(self, values: np.ndarray, X: np.ndarray) -> np.ndarray:
+        """``A @ X`` where ``values`` are ``A``'s entries in the order given
+        to the constructor."""
+        if len(self.cols) * X.shape[1] > self.CSR_WORK:
+            self.csr.data[:] = values[self.order]
+            return self.csr @ X
+        out = np.zeros((self.shape[0], X.shape[1]))
+        if len(self.cols):
+            terms = X[self.cols]
+            terms *= values[self.order, None]
+            out[self.targets] = np.add.reduceat(terms, self.starts, axis=0)
+        return out
+
+
+@dataclass
+class Parts:
+    """The compact closed loop for one flat gain vector.
+
+    ``B = Gs U_xi`` and ``H = (I - Pm) B`` are the link rows over ``xi`` (what
+    is sent, before and after subtracting predictions); ``Phi_z`` the area
+    rows of ``Phi``; ``Gv`` the sender gains on sensor readings (``m x dim
+    v``); ``Q1 = Km Gv`` and ``Q2 = Km (I - Pm)`` map sensor and link noises
+    into the areas, ``Q2_omega = Q2 Omega_eta``; ``p`` and ``k`` are the
+    entries of ``Pm`` and ``Km`` and ``P_omega`` holds ``(Pm Omega_eta)`` at
+    ``Pm``'s entries.
+    """
+
+    g: np.ndarray
+    B: np.ndarray
+    H: np.ndarray
+    Phi_z: np.ndarray
+    Gv: np.ndarray
+    p: np.ndarray
+    k: np.ndarray
+    Q1: np.ndarray
+    Q2: np.ndarray
+    Q2_omega: np.ndarray
+    P_omega: np.ndarray
+
+
+class Structure:
+    """Index maps and constant matrices of the compact form of one layout.
+
+    Rows of link signals are numbered as the link noises in ``nu`` are (spec
+    order); columns of ``Gv`` as the sensor noises. Built once per
+    :class:`Layout`.
+
+    Examples
+    --------
+    >>> st = Layout(spec).structure                        # doctest: +SKIP
+    >>> parts = st.parts(layout.flatten(gains))            # doctest: +SKIP
+    >>> parts.Phi_z.shape == (st.nz, st.nxi)               # doctest: +SKIP
+    True
+    """
+
+    def __init__(self, layout: Layout):
+        spec, world = layout.spec, layout.spec.world
+        self.layout = layout
+        self.n, self.nx, self.nz, self.nxi = layout.n, layout.nx, layout.nz, layout.nxi
+        nx = self.nx
+        eta0 = layout.nxi + layout.n + sum(s.dim for s in spec.sensors)
+        v0 = layout.nxi + layout.n
+        self.m = layout.nq - eta0
+        self.nv = eta0 - v0
+        rows = {ll.id: ll.noise.start - eta0 for ll in layout.links}
+        dims = np.array([ll.dim for ll in layout.links], dtype=int)
+        self.row_link = np.repeat(np.arange(len(layout.links)), dims)
+        self.link_start = np.array([rows[ll.id] for ll in layout.links], dtype=int)
+        vcol = {s.name: layout.sensor_noise[s.name].start - v0 for s in spec.sensors}
+        zcol = {a.name: layout.area_slice[a.name].start - nx for a in spec.areas}
+
+        slot = layout.gain_slots
+        self.M = Entries.of((zcol[a.name], zcol[a.name], *slot[(a.name, "M")]) for a in spec.areas)
+        gz, gv, pm, km = [], [], [], []
+        for ll in layout.links:
+            sender = "G" if ll.kind == PREDICTION else "S"
+            if ll.source in vcol:
+                gv.append((rows[ll.id], vcol[ll.source], *slot[(ll.id, sender)]))
+            else:
+                gz.append((rows[ll.id], zcol[ll.source], *slot[(ll.id, sender)]))
+            if ll.pair is not None:
+                pm.append((rows[ll.id], rows[layout.links[ll.pair].id], *slot[(ll.id, "P")]))
+            if ll.target_is_area:
+                km.append((zcol[ll.target], rows[ll.id], *slot[(ll.id, "K")]))
+        self.Gz, self.Gv, self.P, self.K = (Entries.of(b) for b in (gz, gv, pm, km))
+        # Links grouped by signal size, with their rows (for batched per-link
+        # covariances), and where each residual's P block starts among Pm's entries.
+        by_dim = {}
+        for ll in layout.links:
+            by_dim.setdefault(ll.dim, []).append(ll.index)
+        self.link_groups = [(idx, self.link_start[idx][:, None] + np.arange(d)) for d, idx in by_dim.items()]
+        starts = np.cumsum([0] + [h * w for *_, (h, w) in pm])
+        self.p_blocks = {ll.index: (int(e0), (ll.dim, layout.links[ll.pair].dim))
+                         for ll, e0 in zip([ll for ll in layout.links if ll.pair is not None], starts)}
+        self.Pm = SparseProduct(self.P.rows, self.P.cols, (self.m, self.m))
+        self.PmT = SparseProduct(self.P.cols, self.P.rows, (self.m, self.m))
+        self.Km = SparseProduct(self.K.rows, self.K.cols, (self.nz, self.m))
+        self.KmT = SparseProduct(self.K.cols, self.K.rows, (self.m, self.nz))
+
+        # Constant matrices: sensor views, noise covariances.
+        self.C_all = np.vstack([s.C(world) for s in spec.sensors])
+        self.Omega_v = np.zeros((self.nv, self.nv))
+        for s in spec.sensors:
+            sl = slice(vcol[s.name], vcol[s.name] + s.dim)
+            self.Omega_v[sl, sl] = s.noise
+        noise = Entries.of((rows[l.id], rows[l.id], 0, l.noise.shape) for l in spec.links)
+        self.Omega_eta = SparseProduct(noise.rows, noise.cols, (self.m, self.m))
+        self.omega_eta = np.concatenate([[0.0]] + [l.noise.ravel() for l in spec.links])[1:]
+        # (Pm Omega_eta) at each entry of Pm: entry (i, j) of P_l sums P_l[i, c] N_p[c, j]
+        # over the paired prediction's noise N_p (Omega_eta is block diagonal).
+        dst, src, val, base = [], [], [], 0
+        for ll in layout.links:
+            if ll.pair is None:
+                continue
+            N = spec.links[ll.pair].noise
+            h, w = ll.dim, N.shape[0]
+            i, j, c = (a.ravel() for a in np.meshgrid(np.arange(h), np.arange(w), np.arange(w), indexing="ij"))
+            dst.append(base + i * w + j)
+            src.append(base + i * w + c)
+            val.append(N[c, j])
+            base += h * w
+        cat = (lambda xs, dtype: np.concatenate(xs).astype(dtype) if xs else np.zeros(0, dtype))
+        self.p_omega = (cat(dst, int), cat(src, int), cat(val, float))
+        # (Km' Y) at each entry (i, j) of Pm needs the K entries in column i.
+        by_col = {}
+        for f, c in enumerate(self.K.cols):
+            by_col.setdefault(int(c), []).append(f)
+        pk_e, pk_f = [], []
+        for e, i in enumerate(self.P.rows):
+            for f in by_col.get(int(i), ()):
+                pk_e.append(e)
+                pk_f.append(f)
+        self.p_k = (np.array(pk_e, dtype=int), np.array(pk_f, dtype=int))
+
+        # Error rows F (over xi), their weights, and the fixed part of the cost
+        # matrix on the area rows (errors and activity prices).
+        self.targets = [a for a in spec.areas if a.has_target]
+        F = np.vstack([layout.error_map[a.name][:, :layout.nxi] for a in self.targets]) if self.targets \
+            else np.zeros((0, layout.nxi))
+        self.F = F
+        k = [layout.error_map[a.name].shape[0] for a in self.targets]
+        self.target_start = np.concatenate([[0], np.cumsum(k)[:-1]]).astype(int) if k else np.zeros(0, int)
+        self.w_rows = np.repeat([a.weight for a in self.targets], k)
+        W = F.T @ (self.w_rows[:, None] * F)
+        kappa = np.concatenate([np.full(a.dim, a.activity_price) for a in spec.areas])
+        W[nx:, nx:] += np.diag(kappa)
+        self.Wz_fixed = W[nx:, :]
+        self.area_start = np.array([zcol[a.name] for a in spec.areas], dtype=int)
+        self.kappa = np.array([a.activity_price for a in spec.areas])
+        # The world's stationary part, solved by hierarchy.evaluate on first use.
+        self.world = None
+
+    def parts(self, g: np.ndarray) -> Parts:
+        """The compact closed loop for the flat gain vector ``g``."""
+        n, nx = self.n, self.nx
+        Gv = np.zeros((self.m, self.nv))
+        Gv[self.Gv.rows, self.Gv.cols] = g[self.Gv.at]
+        B = np.zeros((self.m, self.nxi))
+        B[:, :n] = Gv @ self.C_all
+        B[self.Gz.rows, nx + self.Gz.cols] = g[self.Gz.at]
+        p, k = g[self.P.at], g[self.K.at]
+        H = B - self.Pm.matmul(p, B)
+        Phi_z = self.Km.matmul(k, H)
+        Phi_z[self.M.rows, nx + self.M.cols] += g[self.M.at]
+        Q2 = np.zeros((self.nz, self.m))
+        Q2[self.K.rows, self.K.cols] = k
+        Q2 -= self.PmT.matmul(p, Q2.T).T
+        # Omega_eta is symmetric: Q2 Omega = (Omega Q2')'.
+        Q2_omega = self.Omega_eta.matmul(self.omega_eta, Q2.T).T
+        dst, src, val = self.p_omega
+        P_omega = np.bincount(dst, weights=p[src] * val, minlength=len(p))
+        return Parts(g, B, H, Phi_z, Gv, p, k, self.Km.matmul(k, Gv), Q2, Q2_omega, P_omega)

@@ -2,11 +2,11 @@
 
 Price form minimises ``J`` of model.md with a stability-keeping L-BFGS over
 all free gain blocks, using the exact adjoint gradient (two Lyapunov solves
-per evaluation), from several deterministic starts. Budget form turns each
-budget into a price (its Lagrange multiplier) and finds the multipliers at
-which every budget is met: each round fits a convex model of how the error
-falls with each link's power to the current design and solves the allocation
-in CVXPY; the duals of that model's budget rows are the next multipliers.
+per evaluation), from several deterministic starts. Budget form adds each
+budget as an augmented-Lagrangian penalty whose gradient is a priced
+gradient (prices set by the design's own powers), so it costs no more per
+iteration than the price form; rounds of polishing and multiplier updates
+find the multipliers (the shadow prices) at which every budget is met.
 The final design is re-scored exactly; budgets are checked, not assumed.
 """
 
@@ -18,10 +18,10 @@ from dataclasses import dataclass, field
 import numpy as np
 
 from .closedloop import assemble
-from .evaluate import Scores, loop_radius, score
+from .evaluate import Scores, link_covariances, link_powers, loop_radius, score
 from .gains import Gains, check_gains, with_pins
 from .model import Spec
-from .problem import Problem
+from .problem import BudgetPenalty, Problem
 from .solver import CONVERGED, FAILED, ITERATION_LIMIT, minimise
 
 #: A link sending less than this fraction of its noise power (or of its
@@ -33,6 +33,19 @@ FADING = 1.0
 CHUNK = 300
 #: Budgets are met when used <= total * (1 + BUDGET_TOL).
 BUDGET_TOL = 1e-6
+#: The budget form's first penalty weight: missing a budget by its whole
+#: total costs this times the weighted prior error.
+PENALTY_START = 10.0
+#: Penalty weights grow at most to this times the smallest one (beyond, the
+#: solver's problem becomes too badly conditioned).
+MAX_PENALTY = 1e6
+#: In the budget form, a design is settled under given multipliers once a
+#: round of CHUNK iterations lowers the penalised objective by at most this
+#: (relative); its powers then guide the next multipliers.
+SETTLED = 1e-4
+#: A budget left partly unspent counts as slack when its multiplier times
+#: the unspent power is at most this fraction of the objective.
+SLACK_GAP = 1e-6
 
 
 @dataclass
@@ -134,8 +147,10 @@ class DesignResult:
 # price form
 
 
-def _solve_prices(prob: Problem, opts: Options, starts=None):
-    """Best L-BFGS outcome over the starts, then wake-up tests for silent links."""
+def _solve_prices(prob: Problem, opts: Options, starts=None, polish_iter=None, wake=True):
+    """Best L-BFGS outcome over the starts, polished (by default with the rest
+    of the iteration budget; not at all with ``polish_iter=0``), then
+    wake-up tests for silent links."""
     rng = np.random.default_rng(opts.seed)
     if starts is None:
         starts = [prob.pack(prob.informed_start())]
@@ -150,17 +165,24 @@ def _solve_prices(prob: Problem, opts: Options, starts=None):
         return probes[0], sum(o.iterations for o in probes), len(starts)
     best = min(usable, key=lambda o: o.f)
     iterations = sum(o.iterations for o in probes)
-    more, extra = _polish(prob, best.x, opts, max(opts.max_iter - best.iterations, 1))
-    iterations += extra
-    best = more if more.f <= best.f else best
+    if polish_iter is None:
+        polish_iter = max(opts.max_iter - best.iterations, 1)
+    if polish_iter > 0:
+        more, extra = _polish(prob, best.x, opts, polish_iter, wake)
+        iterations += extra
+        best = more if more.f <= best.f else best
     return best, iterations, len(starts)
 
 
-def _polish(prob: Problem, x0, opts: Options, max_iter: int):
+def _polish(prob: Problem, x0, opts: Options, max_iter: int, wake: bool = True, settled: float = 0.0):
     """Minimise from ``x0`` in rounds of at most ``CHUNK`` iterations. Between
     rounds, switch off links that are fading away; once converged, try to
-    wake silent links or modes. Returns the best outcome and the iterations."""
+    wake silent links or modes (unless ``wake`` is false). With ``settled``,
+    also stop after a round that lowers the objective by at most that much
+    (relative). Returns the best outcome and the iterations."""
     best, x, iterations, wakes = None, x0, 0, 0
+    last = prob.value_and_grad(x0)[0] if settled else None
+    converged_f = np.inf  # objective at the last converged round
     while iterations < max_iter:
         out = minimise(prob.value_and_grad, x, max_iter=min(CHUNK, max_iter - iterations),
                        gtol=opts.gtol, ftol=opts.ftol)
@@ -170,12 +192,19 @@ def _polish(prob: Problem, x0, opts: Options, max_iter: int):
         best = out
         if not np.isfinite(best.f):
             break
+        if settled and last - best.f <= settled * abs(last):
+            break
+        last = best.f
         moved = _switch_off_fading(prob, best)
-        if moved is None and best.status == CONVERGED and wakes < 8:
+        if wake and moved is None and best.status == CONVERGED and wakes < 8:
             moved = _wake_silent(prob, best)
             wakes += 1
-        if moved is None and best.status == CONVERGED:
-            break
+        if best.status == CONVERGED:
+            # Switching links off (or waking them) and converging again must
+            # lower the objective; otherwise the two only trade places.
+            if moved is None or not best.f < converged_f - opts.ftol * max(1.0, abs(best.f)):
+                break
+            converged_f = best.f
         x = best.x if moved is None else moved
     return best, iterations
 
@@ -208,17 +237,12 @@ def _switch_off_fading(prob: Problem, best):
     return theta if changed else None
 
 
-def _loop_covariance(prob: Problem, theta):
-    from .evaluate import joint_covariance, stationary_covariance
-
-    loop = assemble(prob.layout, prob.unpack(theta))
-    return loop, joint_covariance(prob.layout, stationary_covariance(loop))
-
-
 def _link_powers(prob: Problem, theta) -> dict:
-    loop, Cq = _loop_covariance(prob, theta)
-    return {ll.id: float(np.einsum("ij,ij->", loop.sent[ll.index] @ Cq, loop.sent[ll.index]))
-            for ll in prob.layout.links}
+    """Power of every link at ``theta`` (``inf`` for all if the loop is unstable)."""
+    powers = link_powers(prob.layout, prob.unpack(theta))
+    if powers is None:
+        powers = np.full(len(prob.spec.links), np.inf)
+    return {l.id: float(p) for l, p in zip(prob.spec.links, powers)}
 
 
 def _silence_floor(prob: Problem, link) -> float:
@@ -240,15 +264,16 @@ def _wake_silent(prob: Problem, best):
     unused direction, let the gradient choose the receiver, and keep the
     point if the objective falls (the sign of the curvature at zero)."""
     theta0, f0 = best.x, best.f
-    loop, Cq = _loop_covariance(prob, theta0)
+    covs = link_covariances(prob.layout, prob.unpack(theta0))
+    if covs is None:
+        return None
     rng = np.random.default_rng(12345)
-    for ll, link in zip(prob.layout.links, prob.spec.links):
+    for cov, link in zip(covs, prob.spec.links):
         block = prob.sender_block(link.id)
         if block is None:
             continue
         sl, shape = block
-        H = loop.sent[ll.index]
-        w, V = np.linalg.eigh(H @ Cq @ H.T)
+        w, V = np.linalg.eigh(cov)
         dead = V[:, w <= _silence_floor(prob, link)]
         if dead.shape[1] == 0:
             continue
@@ -288,9 +313,6 @@ def _best_receiver_step(prob: Problem, theta, receiver_slices, f0):
         fs, _ = prob.value_and_grad(theta + s * d)
         if np.isfinite(fs) and fs < f0 - 1e-12 * max(1.0, abs(f0)):
             return theta + s * d
-    return None
-
-
     return None
 
 
@@ -375,39 +397,6 @@ def raise_unstable_pins(prob: Problem):
 # budget form
 
 
-def _link_model(power, noise, price):
-    """Fit ``a n / (n + P)`` (a Gaussian link of noise ``n`` carrying a source
-    of variance ``a``) so that its slope at the current power equals minus
-    the current price: at a price-form optimum, marginal error = price."""
-    if power > SILENT_FRACTION * noise:
-        return price * (noise + power) ** 2 / noise
-    return 0.9 * price * noise  # silent: the first unit of power is worth less than its price
-
-
-def _allocate(models, base_prices, groups, totals):
-    """Convex allocation of power to links (CVXPY); returns the duals of the
-    budget rows (the next multipliers), or ``None`` if the solve failed."""
-    import cvxpy as cp
-
-    n = len(models)
-    P = cp.Variable(n, nonneg=True)
-    terms = []
-    for i, (a, noise) in enumerate(models):
-        if a > 0:
-            terms.append(a * noise * cp.inv_pos(noise + P[i]))
-    cost = cp.sum(cp.hstack(terms)) if terms else 0
-    cost = cost + base_prices @ P
-    cons = [cp.sum(P[idx]) <= total for idx, total in zip(groups, totals)]
-    prob = cp.Problem(cp.Minimize(cost), cons)
-    try:
-        prob.solve(solver=cp.CLARABEL)
-    except cp.SolverError:
-        prob.solve(solver=cp.SCS, eps=1e-9)
-    if P.value is None:
-        return None
-    return np.array([max(float(c.dual_value), 0.0) for c in cons])
-
-
 def design_budgets(spec: Spec, options: Options | None = None, start: Gains | None = None) -> DesignResult:
     """Optimal gains with every budget of the spec met (the budget form).
 
@@ -415,6 +404,13 @@ def design_budgets(spec: Spec, options: Options | None = None, start: Gains | No
     spec's budgets and reports each budget's shadow price: the Lagrange
     multiplier at the returned design, i.e. how fast the objective would fall
     per unit of extra budget.
+
+    The budgets enter as an augmented-Lagrangian penalty (see
+    :class:`~hierarchy.problem.BudgetPenalty`); each round polishes the
+    design a little under the current multipliers, then updates them,
+    ``mu <- max(0, mu + rho (used - total))``, raising ``rho`` for a budget
+    whose excess did not shrink. Once the budgets are met, one full polish
+    follows, and the link gains are scaled to meet every budget exactly.
 
     Examples
     --------
@@ -427,54 +423,52 @@ def design_budgets(spec: Spec, options: Options | None = None, start: Gains | No
     index = {l.id: i for i, l in enumerate(spec.links)}
     groups = [np.array([index[lid] for lid in b.links]) for b in spec.budgets]
     totals = np.array([b.total for b in spec.budgets], dtype=float)
-    base = np.array([l.price for l in spec.links], dtype=float)
-    noise = np.array([max(float(np.trace(l.noise)), 1e-300) for l in spec.links])
-
-    def prices_for(mu):
-        p = base.copy()
-        for idx, m in zip(groups, mu):
-            p[idx] += m
-        return p
-
-    # A first multiplier from a cheap guess: each link at its fair share.
-    mu = np.array([1.0 / max(t, 1e-300) for t in totals])
-    prob = Problem(spec, prices_for(mu))
-    prob_ref = prob.reference
-    mu = mu * prob_ref  # objective and budget in their own units
-    prob.prices = prices_for(mu)
+    member = np.zeros((len(groups), len(spec.links)))
+    for g, idx in enumerate(groups):
+        member[g, idx] = 1.0
+    prob = Problem(spec)
+    # Multipliers start at zero; missing a budget by its whole total first
+    # costs PENALTY_START times the weighted prior error.
+    mu = np.zeros(len(groups))
+    scale = np.maximum(totals, 1e-9 * max(float(totals.max(initial=0.0)), 1.0))
+    rho = PENALTY_START * prob.reference / scale ** 2
+    prob.penalty = BudgetPenalty(member, totals, mu, rho)
     starts = None if start is None else [prob.pack(with_pins(spec, start))]
-    best, iterations, nstarts = _solve_prices(prob, opts, starts)
+    # Under provisional multipliers a round needs a settled design, not a
+    # converged one, and no wake-up tests: those come in the final polish.
+    best, iterations, nstarts = _solve_prices(prob, opts, starts, polish_iter=0, wake=False)
     message = ""
-    history = []
+    excess = np.full(len(groups), np.inf)
     for _ in range(opts.budget_rounds):
-        powers = np.array(list(_link_powers(prob, best.x).values()))
-        used = np.array([powers[idx].sum() for idx in groups])
-        history.append((mu.copy(), used.copy()))
-        # KKT: every budget met; a budget with a positive multiplier spent in full.
-        spent = np.abs(used - totals) <= opts.budget_rtol * totals
-        if np.all((used <= totals * (1 + opts.budget_rtol)) & ((mu <= 1e-12 * prob_ref) | spent)):
-            break
-        prices = prices_for(mu)
-        models = [(_link_model(powers[i], noise[i], prices[i]), noise[i]) for i in range(len(powers))]
-        new_mu = _allocate(models, base, groups, totals)
-        if new_mu is None:
-            message = "the convex allocation step failed"
-            break
-        # Damp: a multiplier moves at most a factor 10 per round.
-        new_mu = np.clip(new_mu, mu / 10.0, mu * 10.0)
-        if len(history) >= 2:
-            # Where a group keeps flipping between over and under budget, bisect in log space.
-            for g in range(len(mu)):
-                (m1, u1), (m2, u2) = history[-2], history[-1]
-                if (u1[g] - totals[g]) * (u2[g] - totals[g]) < 0:
-                    new_mu[g] = np.sqrt(m1[g] * m2[g]) if m1[g] > 0 and m2[g] > 0 else new_mu[g]
-        mu = np.maximum(new_mu, 0.0)
-        prob.prices = prices_for(mu)
-        more, extra = _polish(prob, best.x, opts, opts.max_iter)
+        # Multipliers are updated from a design settled under the current ones
+        # (an unsettled design's powers would send them astray).
+        more, extra = _polish(prob, best.x, opts, opts.max_iter, wake=False, settled=SETTLED)
         iterations += extra
         best = more if np.isfinite(more.f) else best
+        over = member @ _powers(prob, best.x) - totals
+        new_mu = np.maximum(0.0, mu + rho * over)
+        # KKT: every budget met; a budget with a positive multiplier spent in
+        # full at a settled multiplier, or its multiplier times what is left
+        # negligible beside the objective (complementary slackness); and the
+        # design settled under these multipliers.
+        spent = np.abs(over) <= opts.budget_rtol * totals
+        settled = np.abs(new_mu - mu) <= opts.budget_rtol * new_mu
+        idle = new_mu * np.maximum(-over, 0.0) <= SLACK_GAP * abs(best.f) * prob.reference
+        met = (over <= opts.budget_rtol * totals) & ((spent & settled) | idle)
+        mu = new_mu
+        if np.all(met):
+            break
+        # Raise the weight of an unmet budget whose miss did not shrink fourfold.
+        miss = np.abs(over) / scale
+        rho = np.where(~met & (miss > 0.25 * excess), np.minimum(rho * 10.0, MAX_PENALTY * rho.min()), rho)
+        excess = miss
+        prob.penalty = BudgetPenalty(member, totals, mu, rho)
     else:
         message = f"budgets not met within {opts.budget_rtol:g} after {opts.budget_rounds} rounds"
+    prob.penalty = BudgetPenalty(member, totals, mu, rho)
+    more, extra = _polish(prob, best.x, opts, opts.max_iter)
+    iterations += extra
+    best = more if np.isfinite(more.f) else best
 
     theta = _meet_budgets(prob, best.x, groups, totals, mu)
     result = _finish(prob, theta, best, iterations, nstarts, time.perf_counter() - t0, "budget")
@@ -491,6 +485,10 @@ def design_budgets(spec: Spec, options: Options | None = None, start: Gains | No
     if message:
         result.message = message if not result.message else f"{result.message}; {message}"
     return result
+
+
+def _powers(prob: Problem, theta) -> np.ndarray:
+    return np.array(list(_link_powers(prob, theta).values()))
 
 
 def _meet_budgets(prob: Problem, theta, groups, totals, mu):

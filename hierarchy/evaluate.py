@@ -57,10 +57,6 @@ def joint_covariance(layout: Layout, Sigma: np.ndarray) -> np.ndarray:
     return Cq
 
 
-def _quad(rows: np.ndarray, Cq: np.ndarray) -> float:
-    return float(np.einsum("ij,ij->", rows @ Cq, rows))
-
-
 @dataclass
 class AreaScore:
     """Scores of one area. ``error`` and ``prior`` are ``None`` for a relay."""
@@ -146,12 +142,219 @@ def check_stable(loop: ClosedLoop, what: str = "the closed loop") -> float:
     """Return the loop's spectral radius; raise :class:`UnstableError` if >= 1."""
     radius = loop_radius(loop)
     if not radius < STABLE_RADIUS:
-        raise UnstableError(
-            f"{what} is unstable: spectral radius {radius:.6g} (a stationary regime needs < 1)",
-            place="gains",
-            fix="shrink the area gains M or the loop gains K*S, K*G; `hierarchy design` finds stable gains",
-        )
+        raise _unstable(radius, what)
     return radius
+
+
+class _Schur:
+    """Real Schur form ``A = U T U'`` with what the Cayley transform needs:
+    ``(T + I)^-1`` and ``Tc = (T + I)^-1 (T - I)``, which has the same
+    quasi-triangular pattern as ``T`` (rounding below it is cleared because
+    LAPACK's ``trsyl`` reads the pattern off the subdiagonal).
+
+    LAPACK is called directly: scipy's wrappers cost more than the work on
+    the small matrices of most circuits. The inverse is formed once (gesv)
+    rather than applied by ``getrs``, which multithreaded OpenBLAS runs in
+    parallel at any size: milliseconds per call on a busy machine."""
+
+    def __init__(self, A: np.ndarray):
+        n = len(A)
+        T, _, wr, wi, U, _, info = sla.lapack.dgees(lambda re, im: None, A, lwork=max(1, 34 * n))
+        if info:
+            raise np.linalg.LinAlgError(f"the Schur form did not converge (LAPACK dgees info {info})")
+        self.U = U
+        self.radius = float(np.hypot(wr, wi).max()) if n else 0.0
+        self.inv = np.linalg.solve(T + np.eye(n), np.eye(n))
+        Tc = self.inv @ (T - np.eye(n))
+        below = np.tril(np.ones((n, n), dtype=bool), -1)
+        sub = np.arange(n - 1)
+        below[sub + 1, sub] = np.diag(T, -1) == 0
+        Tc[below] = 0.0
+        self.Tc = Tc
+
+    def solve(self, C: np.ndarray, trans: bool = False) -> np.ndarray:
+        """``(T + I)^-1 C``, or ``(T + I)^-T C`` with ``trans``."""
+        return (self.inv.T if trans else self.inv) @ C
+
+
+def _stein(a: _Schur, ta: bool, b: _Schur, tb: bool, C: np.ndarray) -> np.ndarray:
+    """Solve ``X - op(A) X op(B)' = C`` (``op`` transposes when ``ta``/``tb``).
+
+    The Cayley transform ``Ac = (A - I)(A + I)^-1`` turns it into the
+    Sylvester equation ``op(Ac) X + X op(Bc)' = -2 op(A + I)^-1 C op(B + I)^-T``
+    (what scipy's ``solve_discrete_lyapunov`` does for one matrix), solved in
+    the Schur bases by LAPACK ``trsyl``: O(n^3), no Kronecker form.
+    """
+    if C.size == 0:
+        return np.zeros_like(C)
+    rhs = -2.0 * a.solve(a.U.T @ C @ b.U, ta)
+    rhs = b.solve(rhs.T, tb).T
+    X, scale, info = sla.lapack.dtrsyl(a.Tc, b.Tc, rhs, trana="T" if ta else "N", tranb="N" if tb else "T")
+    if info < 0:
+        raise ValueError(f"trsyl: argument {-info} is invalid")
+    return a.U @ (X / scale) @ b.U.T
+
+
+class _WorldPart:
+    """What never changes with the gains: the augmented world's stationary
+    covariance ``Sigma_xx`` and Schur form (one per layout)."""
+
+    def __init__(self, layout: Layout):
+        A = layout.A_aug
+        Q = np.zeros_like(A)
+        Q[:layout.n, :layout.n] = layout.spec.world.Q
+        self.A = A
+        self.schur = _Schur(A)
+        S = sla.solve_discrete_lyapunov(A, Q)
+        self.Sigma = 0.5 * (S + S.T)
+        self.radius = self.schur.radius
+
+
+def _world_part(layout: Layout) -> _WorldPart:
+    st = layout.structure
+    if st.world is None:  # solved on first use, then kept with the layout
+        st.world = _WorldPart(layout)
+    return st.world
+
+
+@dataclass
+class _Solution:
+    """Stationary covariance of one design and the pieces every score reuses."""
+
+    parts: object
+    schur: _Schur
+    radius: float
+    Sigma: np.ndarray
+    HS: np.ndarray          # H Sigma (link rows over xi)
+    row_power: np.ndarray   # E s_i^2 for every link row
+
+
+def _solve(layout: Layout, g: np.ndarray):
+    """Stationary regime of the flat gains ``g``: ``(radius, _Solution)``,
+    with ``None`` for the solution when the loop is unstable.
+
+    The world block does not depend on the gains, so only the area part is
+    solved: a Stein equation for ``Sigma_zx`` and a Lyapunov equation for
+    ``Sigma_zz``, both with one Schur form of ``Phi_zz``."""
+    st = layout.structure
+    world = _world_part(layout)
+    p = st.parts(g)
+    nx = st.nx
+    Pzx, Pzz = p.Phi_z[:, :nx], p.Phi_z[:, nx:]
+    sch = _Schur(Pzz)
+    radius = max(world.radius, sch.radius)
+    if not radius < STABLE_RADIUS:
+        return radius, None
+    PS = Pzx @ world.Sigma
+    Szx = _stein(sch, False, world.schur, False, PS @ world.A.T)
+    cross = Pzz @ Szx @ Pzx.T
+    V = p.Q1 @ st.Omega_v @ p.Q1.T + p.Q2 @ p.Q2_omega.T
+    Szz = _stein(sch, False, sch, False, PS @ Pzx.T + cross + cross.T + V)
+    Sigma = np.empty((st.nxi, st.nxi))
+    Sigma[:nx, :nx] = world.Sigma
+    Sigma[nx:, :nx] = Szx
+    Sigma[:nx, nx:] = Szx.T
+    Sigma[nx:, nx:] = 0.5 * (Szz + Szz.T)
+    HS = p.H @ Sigma
+    row_power = np.einsum("ij,ij->i", HS, p.H) + np.einsum("ij,ij->i", p.Gv @ st.Omega_v, p.Gv)
+    row_power += np.bincount(st.P.rows, weights=p.P_omega * p.p, minlength=st.m)
+    return radius, _Solution(p, sch, radius, Sigma, HS, row_power)
+
+
+def area_radius(layout: Layout, g: np.ndarray) -> float:
+    """Spectral radius of the area block of ``Phi`` for the flat gain vector
+    ``g``: the part of the closed loop that the gains move (``Phi`` is block
+    triangular, so the loop's radius is the larger of this and the world's).
+
+    Examples
+    --------
+    >>> lay = Layout(spec)                       # doctest: +SKIP
+    >>> area_radius(lay, lay.flatten(gains))     # doctest: +SKIP
+    0.93...
+    """
+    st = layout.structure
+    return spectral_radius(st.parts(g).Phi_z[:, st.nx:])
+
+
+def _link_powers(st, sol: _Solution) -> np.ndarray:
+    if not st.m:
+        return np.zeros(0)
+    return np.add.reduceat(sol.row_power, st.link_start)
+
+
+def _error_rows(st, sol: _Solution) -> np.ndarray:
+    return np.einsum("ij,ij->i", st.F @ sol.Sigma, st.F)
+
+
+def _unstable(radius: float, what: str = "the closed loop") -> UnstableError:
+    return UnstableError(
+        f"{what} is unstable: spectral radius {radius:.6g} (a stationary regime needs < 1)",
+        place="gains",
+        fix="shrink the area gains M or the loop gains K*S, K*G; `hierarchy design` finds stable gains",
+    )
+
+
+def link_powers(layout: Layout, gains: Gains) -> np.ndarray | None:
+    """Power ``E||s_l||^2`` of every link (spec order), or ``None`` if the
+    closed loop is unstable.
+
+    Examples
+    --------
+    >>> link_powers(Layout(spec), gains)          # doctest: +SKIP
+    array([0.41..., 0.12...])
+    """
+    radius, sol = _solve(layout, layout.flatten(gains))
+    return None if sol is None else _link_powers(layout.structure, sol)
+
+
+def link_covariances(layout: Layout, gains: Gains) -> list | None:
+    """Covariance ``Cov(s_l)`` of the signal each link sends (spec order),
+    or ``None`` if the closed loop is unstable.
+
+    Examples
+    --------
+    >>> [c.shape for c in link_covariances(Layout(spec), gains)]   # doctest: +SKIP
+    [(1, 1), (1, 1)]
+    """
+    radius, sol = _solve(layout, layout.flatten(gains))
+    return None if sol is None else _link_covariances(layout, sol)
+
+
+def _link_covariances(layout: Layout, sol: _Solution) -> list:
+    st, p = layout.structure, sol.parts
+    GvO = p.Gv @ st.Omega_v
+    out = [None] * len(layout.links)
+    for links, rows in st.link_groups:  # links of one signal size, batched
+        cov = sol.HS[rows] @ p.H[rows].transpose(0, 2, 1) + GvO[rows] @ p.Gv[rows].transpose(0, 2, 1)
+        for i, c in zip(links, cov):
+            out[i] = c
+    for i, (e0, shape) in st.p_blocks.items():  # the paired prediction's noise, through P
+        P = p.p[e0:e0 + shape[0] * shape[1]].reshape(shape)
+        out[i] = out[i] + P @ layout.spec.links[layout.links[i].pair].noise @ P.T
+    return [0.5 * (c + c.T) for c in out]
+
+
+def _bits_all(covs: list, noises: list) -> list:
+    """:func:`_bits` of every link, batched by signal size (links whose noise
+    is not positive definite go one by one)."""
+    out = [0.0] * len(covs)
+    sizes = {}
+    for i, N in enumerate(noises):
+        sizes.setdefault(len(N), []).append(i)
+    for d, idx in sizes.items():
+        C = np.stack([covs[i] for i in idx])
+        try:
+            L = np.linalg.cholesky(np.stack([noises[i] for i in idx]))
+        except np.linalg.LinAlgError:
+            for i in idx:
+                out[i] = _bits(covs[i], noises[i])
+            continue
+        X = np.linalg.solve(L, np.linalg.solve(L, C).transpose(0, 2, 1))
+        logdet = np.linalg.slogdet(np.eye(d) + 0.5 * (X + X.transpose(0, 2, 1)))[1]
+        power = np.trace(C, axis1=1, axis2=2)
+        for i, bits, pw in zip(idx, 0.5 * logdet / np.log(2.0), power):
+            out[i] = float(bits) if pw > 0 else 0.0
+    return out
 
 
 def score(layout: Layout, gains: Gains, prices=None) -> Scores:
@@ -167,33 +370,46 @@ def score(layout: Layout, gains: Gains, prices=None) -> Scores:
     ------
     UnstableError
         If the closed loop has no stationary regime.
+
+    Examples
+    --------
+    >>> score(Layout(spec), gains).objective        # doctest: +SKIP
+    0.23...
     """
     spec = layout.spec
+    st = layout.structure
     prices = layout.price if prices is None else np.asarray(prices, dtype=float)
-    loop = assemble(layout, gains)
-    radius = check_stable(loop)
-    Sigma = stationary_covariance(loop)
-    Cq = joint_covariance(layout, Sigma)
+    radius, sol = _solve(layout, layout.flatten(gains))
+    if sol is None:
+        raise _unstable(radius)
+    world = _world_part(layout)
+    err_rows = _error_rows(st, sol)
+    diag_z = np.diag(sol.Sigma)[st.nx:]
     areas, links = {}, {}
     werr = eng = act = 0.0
-    for a in spec.areas:
-        activity = _quad(layout.state_rows(a.name), Cq)
+    t = 0
+    for i, a in enumerate(spec.areas):
+        z0 = st.area_start[i]
+        activity = float(diag_z[z0:z0 + a.dim].sum())
         if a.has_target:
-            err = _quad(layout.error_map[a.name], Cq)
-            prior = _quad(layout.target_map[a.name], Cq)
+            Tq = layout.target_map[a.name][:, :st.nx]
+            k0 = st.target_start[t]
+            err = float(err_rows[k0:k0 + len(Tq)].sum())
+            prior = float(np.einsum("ij,ij->", Tq @ world.Sigma, Tq))
             rel = err / prior if prior > 0 else float("nan") if err > 0 else 0.0
             werr += a.weight * err
+            t += 1
         else:
             err = prior = rel = None
         act += a.activity_price * activity
         areas[a.name] = AreaScore(err, prior, rel, activity, a.weight, a.lag)
+    powers = _link_powers(st, sol)
+    bits = _bits_all(_link_covariances(layout, sol), [l.noise for l in spec.links])
     for ll, l in zip(layout.links, spec.links):
-        H = loop.sent[ll.index]
-        cov_s = H @ Cq @ H.T
-        power = float(np.trace(cov_s))
+        power = float(powers[ll.index])
         npow = float(np.trace(l.noise))
         snr = power / npow if npow > 0 else (float("inf") if power > 0 else 0.0)
-        links[l.id] = LinkScore(l.kind, power, npow, snr, _bits(cov_s, l.noise), float(prices[ll.index]))
+        links[l.id] = LinkScore(l.kind, power, npow, snr, bits[ll.index], float(prices[ll.index]))
         eng += prices[ll.index] * power
     return Scores(werr + eng + act, werr, eng, act, radius, areas, links)
 
@@ -231,56 +447,88 @@ def cost_and_gradient(layout: Layout, gains: Gains, prices=None):
     grad : Gains
         Same blocks as ``gains``.
     radius : float
+
+    Examples
+    --------
+    >>> J, grad, radius = cost_and_gradient(Layout(spec), gains)   # doctest: +SKIP
+    >>> grad.links["eye->v1"]["K"].shape                           # doctest: +SKIP
+    (2, 2)
     """
-    spec = layout.spec
-    prices = layout.price if prices is None else np.asarray(prices, dtype=float)
-    loop = assemble(layout, gains)
-    radius = loop_radius(loop)
-    if not radius < STABLE_RADIUS:
+    J, dg, radius = flat_cost_and_gradient(layout, layout.flatten(gains), prices)
+    return J, (None if dg is None else layout.unflatten(dg)), radius
+
+
+def flat_cost_and_gradient(layout: Layout, g: np.ndarray, prices=None):
+    """:func:`cost_and_gradient` on the flat gain vector of
+    :meth:`Layout.flatten <hierarchy.closedloop.Layout.flatten>`; the
+    gradient is a vector in the same order (``None`` when unstable).
+
+    ``prices`` may also be a function of the link powers (spec order) that
+    returns the prices: ``J`` and the gradient are then those of the priced
+    objective at the prices it returns for this design's powers (the budget
+    form's penalty uses this: its gradient is such a priced gradient).
+
+    Only the area rows of ``Phi`` depend on the gains, so the adjoint is
+    needed only on those rows: ``Lambda_zz`` from a Lyapunov equation and
+    ``Lambda_zx`` from a Stein equation, with the Schur form of the forward
+    solve. With ``Y = dJ/dPsi_z`` and ``g_R = Km' Y + 2 diag(price) S Cov(q)``
+    (the gradient on what arrives), the compact form gives
+    ``dJ/dKm = Y R'``, ``dJ/dPm = -g_R B'``, ``dJ/dGs = (I - Pm)' g_R U'`` and
+    ``dJ/dMz = Y`` on the area columns, each read only at its entries.
+
+    Examples
+    --------
+    >>> lay = Layout(spec)                                                # doctest: +SKIP
+    >>> J, dg, radius = flat_cost_and_gradient(lay, lay.flatten(gains))  # doctest: +SKIP
+    """
+    st = layout.structure
+    radius, sol = _solve(layout, g)
+    if sol is None:
         return float("inf"), None, radius
-    nxi = layout.nxi
-    Sigma = stationary_covariance(loop)
-    Cq = joint_covariance(layout, Sigma)
-    # Cost matrix W over q.
-    W = np.zeros((layout.nq, layout.nq))
-    for a in spec.areas:
-        if a.has_target and a.weight:
-            F = layout.error_map[a.name]
-            W += a.weight * (F.T @ F)
-        if a.activity_price:
-            sl = layout.area_slice[a.name]
-            W[sl, sl] += a.activity_price * np.eye(sl.stop - sl.start)
-    for ll in layout.links:
-        if prices[ll.index]:
-            H = loop.sent[ll.index]
-            W += prices[ll.index] * (H.T @ H)
-    J = float(np.einsum("ij,ij->", W, Cq))
-    Lam = sla.solve_discrete_lyapunov(loop.Phi.T, W[:nxi, :nxi])
-    Lam = 0.5 * (Lam + Lam.T)
-    GPsi = 2.0 * (Lam @ loop.Psi) @ Cq  # dJ/dPsi
-    grad = Gains()
-    g_recv = [np.zeros_like(r) for r in loop.received]
-    for a in spec.areas:
-        sl = layout.area_slice[a.name]
-        grad.areas[a.name] = {"M": GPsi[sl, sl].copy()}
-    for ll in layout.links:
-        grad.links[ll.id] = {}
-        if ll.target_is_area:
-            Ga = GPsi[layout.area_slice[ll.target]]
-            grad.links[ll.id]["K"] = Ga @ loop.received[ll.index].T
-            g_recv[ll.index] += gains.links[ll.id]["K"].T @ Ga
-    order = [ll for ll in layout.links if ll.kind != "prediction"] + \
-            [ll for ll in layout.links if ll.kind == "prediction"]
-    for ll in order:
-        g_sent = g_recv[ll.index]
-        if prices[ll.index]:
-            g_sent = g_sent + 2.0 * prices[ll.index] * (loop.sent[ll.index] @ Cq)
-        U = layout.output[ll.source]
-        if ll.kind == "prediction":
-            grad.links[ll.id]["G"] = g_sent @ U.T
-        else:
-            grad.links[ll.id]["S"] = g_sent @ U.T
-            if ll.pair is not None:
-                grad.links[ll.id]["P"] = -g_sent @ loop.received[ll.pair].T
-                g_recv[ll.pair] -= gains.links[ll.id]["P"].T @ g_sent
-    return J, grad, radius
+    if callable(prices):
+        prices = prices(_link_powers(st, sol))
+    prices = layout.price if prices is None else np.asarray(prices, dtype=float)
+    world = _world_part(layout)
+    p, Sigma, nx, n = sol.parts, sol.Sigma, st.nx, st.n
+    lam = prices[st.row_link]
+    err = _error_rows(st, sol)
+    activity = np.add.reduceat(np.diag(Sigma)[nx:], st.area_start)
+    J = float(st.w_rows @ err + st.kappa @ activity + lam @ sol.row_power)
+
+    # Adjoint on the area rows. W's area rows: errors and activity (fixed)
+    # plus the priced link rows H' diag(price) H.
+    LH = lam[:, None] * p.H
+    Wz = st.Wz_fixed + p.H[:, nx:].T @ LH
+    Pzx, Pzz = p.Phi_z[:, :nx], p.Phi_z[:, nx:]
+    Azz = _stein(sol.schur, True, sol.schur, True, Wz[:, nx:])
+    Azz = 0.5 * (Azz + Azz.T)
+    Azx = _stein(sol.schur, True, world.schur, True, Pzz.T @ Azz @ Pzx + Wz[:, :nx])
+    # Y = 2 (Lambda Psi Cov(q)) on the area rows, over xi, sensor noises, link noises.
+    AP = Azz @ p.Phi_z
+    AP[:, :nx] += Azx @ world.A
+    Yx = 2.0 * AP @ Sigma
+    Yv = 2.0 * Azz @ (p.Q1 @ st.Omega_v)
+    Ye = 2.0 * Azz @ p.Q2_omega
+
+    dg = np.zeros_like(g)
+    dg[st.M.at] = Yx[st.M.rows, nx + st.M.cols]
+    K = st.K
+    if len(K.at):
+        PY = st.Pm.matmul(p.p, Ye.T)  # (Ye Pm')': the -Pm part of what arrives, over link noises
+        dg[K.at] = (np.einsum("ij,ij->i", Yx[K.rows], p.H[K.cols])
+                    + np.einsum("ij,ij->i", Yv[K.rows], p.Gv[K.cols])
+                    + Ye[K.rows, K.cols] - PY[K.cols, K.rows])
+    gR = st.KmT.matmul(p.k, Yx) + 2.0 * lam[:, None] * sol.HS
+    gRv = st.KmT.matmul(p.k, Yv) + 2.0 * lam[:, None] * (p.Gv @ st.Omega_v)
+    P = st.P
+    if len(P.at):
+        e, f = st.p_k
+        KYe = np.bincount(e, weights=p.k[f] * Ye[K.rows[f], P.cols[e]], minlength=len(P.at))
+        dg[P.at] = -(np.einsum("ij,ij->i", gR[P.rows], p.B[P.cols]) + KYe
+                     - 2.0 * lam[P.rows] * p.P_omega)
+    gB = gR - st.PmT.matmul(p.p, gR)
+    gBv = gRv - st.PmT.matmul(p.p, gRv)
+    dg[st.Gz.at] = gB[st.Gz.rows, nx + st.Gz.cols]
+    Gv = st.Gv
+    dg[Gv.at] = np.einsum("ij,ij->i", gB[Gv.rows, :n], st.C_all[Gv.cols]) + gBv[Gv.rows, Gv.cols]
+    return J, dg, radius

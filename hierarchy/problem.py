@@ -15,7 +15,7 @@ import numpy as np
 import scipy.linalg as sla
 
 from .closedloop import Layout
-from .evaluate import cost_and_gradient
+from .evaluate import area_radius, flat_cost_and_gradient
 from .gains import Gains, gain_shapes, pinned_gains
 from .model import PREDICTION, Spec
 
@@ -45,6 +45,7 @@ class Problem:
         self.layout = Layout(spec)
         self.prices = self.layout.price.copy() if prices is None else np.asarray(prices, float).copy()
         self.pins = pinned_gains(spec)
+        self.links = {l.id: l for l in spec.links}
         world = spec.world
         self.world_cov = sla.solve_discrete_lyapunov(world.A, world.Q)
         self.node_scale = self._node_scales()
@@ -64,10 +65,28 @@ class Problem:
                     self.blocks.append((kind, owner, name, shape, factor, offset))
                     offset += shape[0] * shape[1]
         self.size = offset
+        # Solver units -> the layout's flat gain vector: pins stay in `base`,
+        # free entries go to `free_at`, each multiplied by its block's factor.
+        lay = self.layout
+        self.base = np.zeros(lay.n_gains)
+        for (owner, name), (off, shape) in lay.gain_slots.items():
+            pin = self.pins.get(owner, name)
+            if pin is not None:
+                self.base[off:off + shape[0] * shape[1]] = np.asarray(pin, dtype=float).ravel()
+        at, fac = [np.zeros(0, int)], [np.zeros(0)]
+        for kind, owner, name, shape, factor, off in self.blocks:
+            start = lay.gain_slots[(owner, name)][0]
+            at.append(start + np.arange(shape[0] * shape[1]))
+            fac.append(np.full(shape[0] * shape[1], factor))
+        self.free_at, self.free_factor = np.concatenate(at), np.concatenate(fac)
+        self.by_owner = {}  # owner -> [(name, slice of theta, shape)]
+        for kind, owner, name, shape, factor, off in self.blocks:
+            self.by_owner.setdefault(owner, []).append((name, slice(off, off + shape[0] * shape[1]), shape))
         prior = sum(a.weight * float(np.trace(world.selector(a.tracks) @ self.world_cov @ world.selector(a.tracks).T))
                     for a in spec.areas if a.has_target)
         self.reference = prior if prior > 0 else 1.0
         self.evaluations = 0
+        self.penalty = None  # a BudgetPenalty in the budget form
 
     def _node_scales(self) -> dict:
         world, cov = self.spec.world, self.world_cov
@@ -86,7 +105,7 @@ class Problem:
     def _factor(self, owner: str, name: str) -> float:
         if name == "M":
             return 1.0
-        link = self.spec.link(owner)
+        link = self.links[owner]
         sigma = self.link_scale[owner]
         if name == "K":
             return self.node_scale[link.target] / sigma
@@ -96,13 +115,19 @@ class Problem:
         return sigma / self.link_scale[pair]
 
     # -- flattening (private to the solver) --------------------------------
+    def flat(self, theta: np.ndarray) -> np.ndarray:
+        """The layout's flat gain vector (pins included) for ``theta``."""
+        g = self.base.copy()
+        g[self.free_at] = self.free_factor * theta
+        return g
+
     def unpack(self, theta: np.ndarray) -> Gains:
         """Gains (pins included) for the solver's vector ``theta``."""
-        g = self.pins.copy()
-        for kind, owner, name, shape, factor, off in self.blocks:
-            n = shape[0] * shape[1]
-            getattr(g, kind).setdefault(owner, {})[name] = factor * theta[off:off + n].reshape(shape)
-        return g
+        return self.layout.unflatten(self.flat(theta))
+
+    def area_radius(self, theta: np.ndarray) -> float:
+        """Spectral radius of the area block of the closed loop at ``theta``."""
+        return area_radius(self.layout, self.flat(theta))
 
     def pack(self, gains: Gains) -> np.ndarray:
         theta = np.zeros(self.size)
@@ -112,22 +137,33 @@ class Problem:
         return theta
 
     def value_and_grad(self, theta: np.ndarray):
-        """Relative objective ``J / reference`` and its gradient in solver units
-        (``inf, None`` when the closed loop is unstable)."""
+        """Relative objective ``J / reference`` (plus the budget penalty, if
+        one is set) and its gradient in solver units (``inf, None`` when the
+        closed loop is unstable)."""
         self.evaluations += 1
-        J, grad, _ = cost_and_gradient(self.layout, self.unpack(theta), self.prices)
+        if self.penalty is None:
+            J, grad, _ = flat_cost_and_gradient(self.layout, self.flat(theta), self.prices)
+        else:
+            # The penalty's gradient is a priced gradient at prices set by this
+            # design's own powers; the value then swaps the linear price terms
+            # for the penalty's.
+            seen = []
+
+            def prices(powers):
+                seen.append(powers)
+                return self.prices + self.penalty.prices(powers)
+
+            J, grad, _ = flat_cost_and_gradient(self.layout, self.flat(theta), prices)
+            if grad is not None:
+                powers = seen[0]
+                J += self.penalty.value(powers) - self.penalty.prices(powers) @ powers
         if grad is None:
             return float("inf"), None
-        out = np.empty(self.size)
-        for kind, owner, name, shape, factor, off in self.blocks:
-            n = shape[0] * shape[1]
-            out[off:off + n] = factor * getattr(grad, kind)[owner][name].ravel()
-        return J / self.reference, out / self.reference
+        return J / self.reference, self.free_factor * grad[self.free_at] / self.reference
 
     def slices(self, owner: str, names: str = "MGSPK") -> list:
         """Slices of ``theta`` holding the free gains ``names`` of one link or area."""
-        return [slice(off, off + shape[0] * shape[1])
-                for kind, o, name, shape, factor, off in self.blocks if o == owner and name in names]
+        return [sl for name, sl, shape in self.by_owner.get(owner, ()) if name in names]
 
     def sender_slices(self, link_id: str) -> list:
         return self.slices(link_id, "GSP")
@@ -135,9 +171,9 @@ class Problem:
     def sender_block(self, link_id: str):
         """``(slice, shape)`` of the free gain that forms a link's signal from
         its source (``G`` or ``S``), or ``None`` if it is pinned."""
-        for kind, o, name, shape, factor, off in self.blocks:
-            if o == link_id and name in "GS":
-                return slice(off, off + shape[0] * shape[1]), shape
+        for name, sl, shape in self.by_owner.get(link_id, ()):
+            if name in "GS":
+                return sl, shape
         return None
 
     def receiver_slices(self, link_id: str) -> list:
@@ -158,8 +194,9 @@ class Problem:
                 k = T.shape[0]
                 M[:k, :k] = 0.9 * (T @ A @ T.T)
             g.areas[a.name] = {"M": M}
+        link_shapes = gain_shapes(spec)["links"]
         for l in spec.links:
-            shapes = gain_shapes(spec)["links"][l.id]
+            shapes = link_shapes[l.id]
             blocks = {}
             for name, shape in shapes.items():
                 blocks[name] = _eye(shape)
@@ -177,13 +214,11 @@ class Problem:
             if "K" in blocks:
                 blocks["K"] = 0.5 * blocks["K"] * (1.0 if l.kind != PREDICTION else 0.2)
             g.links[l.id] = blocks
-        # Shrink until the loop is comfortably stable.
-        from .closedloop import assemble
-        from .evaluate import loop_radius
-
+        # Shrink until the loop is comfortably stable. Only the area block
+        # shrinks: a slow world (radius 0.95 or more) would otherwise squash
+        # every start onto the zero-gain saddle.
         for _ in range(40):
-            full = self.unpack(self.pack(g)) if self.size else self.pins
-            if loop_radius(assemble(self.layout, full)) < 0.95:
+            if self.area_radius(self.pack(g)) < 0.95:
                 break
             for blocks in g.links.values():
                 if "K" in blocks:
@@ -193,16 +228,58 @@ class Problem:
         return g
 
     def random_start(self, rng: np.random.Generator, scale: float = 0.3) -> np.ndarray:
-        """A random start in solver units, shrunk until the loop is stable."""
-        from .closedloop import assemble
-        from .evaluate import loop_radius
-
+        """A random start in solver units, shrunk until the area block of the
+        loop is comfortably stable (see :meth:`informed_start`)."""
         theta = scale * rng.standard_normal(self.size) / np.sqrt(3.0)
         for _ in range(60):
-            if loop_radius(assemble(self.layout, self.unpack(theta))) < 0.95:
+            if self.area_radius(theta) < 0.95:
                 return theta
             theta *= 0.7
         return theta
+
+
+class BudgetPenalty:
+    """Augmented-Lagrangian term of the budget form (Nocedal & Wright,
+    *Numerical Optimization*, 2nd ed., section 17.4, inequality form):
+    ``sum_g [max(0, mu_g + rho_g c_g)^2 - mu_g^2] / (2 rho_g)`` with ``c_g``
+    the power of budget group ``g`` minus its total.
+
+    Its gradient is the gradient of the link powers priced at
+    ``max(0, mu_g + rho_g c_g)`` per group, so the exact evaluation computes
+    it at no extra cost.
+
+    Parameters
+    ----------
+    member : ndarray
+        ``(groups x links)``, 1 where a link belongs to a group.
+    totals, mu, rho : ndarray
+        Per group: the budget, its multiplier and its penalty weight.
+
+    Examples
+    --------
+    >>> pen = BudgetPenalty(np.ones((1, 2)), np.array([1.0]), np.array([0.5]), np.array([10.0]))
+    >>> pen.prices(np.array([0.25, 0.25]))
+    array([0., 0.])
+    >>> pen.prices(np.array([1.0, 0.5]))
+    array([5.5, 5.5])
+    """
+
+    def __init__(self, member, totals, mu, rho):
+        self.member = np.asarray(member, dtype=float)
+        self.totals = np.asarray(totals, dtype=float)
+        self.mu = np.asarray(mu, dtype=float)
+        self.rho = np.asarray(rho, dtype=float)
+
+    def weights(self, powers: np.ndarray) -> np.ndarray:
+        """``max(0, mu + rho c)`` per group: the next multipliers."""
+        return np.maximum(0.0, self.mu + self.rho * (self.member @ powers - self.totals))
+
+    def prices(self, powers: np.ndarray) -> np.ndarray:
+        """The per-link prices whose priced gradient is the penalty's gradient."""
+        return self.member.T @ self.weights(powers)
+
+    def value(self, powers: np.ndarray) -> float:
+        return float(np.sum((self.weights(powers) ** 2 - self.mu ** 2) / (2.0 * self.rho)))
 
 
 def _eye(shape) -> np.ndarray:
