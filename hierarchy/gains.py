@@ -16,6 +16,7 @@ design is a JSON file (see :func:`save_gains`).
 from __future__ import annotations
 
 import json
+import math
 from dataclasses import dataclass, field
 
 import numpy as np
@@ -26,6 +27,11 @@ from .model import PREDICTION, RESIDUAL, Spec
 
 GAINS_FORMAT = "hierarchy-gains"
 GAINS_VERSION = 1
+#: Largest gain entry accepted (in size). Products of a few gains must stay
+#: far from overflow when the closed loop is assembled.
+MAX_GAIN = 1e30
+#: Largest gains file read, in bytes.
+MAX_GAINS_FILE = 50_000_000
 
 
 def paired_prediction(spec: Spec, link):
@@ -165,7 +171,11 @@ def check_gains(spec: Spec, gains: Gains, source: str = "gains") -> Gains:
                         place=f"{source}: {kind}.{owner}.{name}",
                         fix=f"its gains are: {', '.join(known[owner])}",
                     )
-                arr = np.asarray(mat, dtype=float)
+                try:
+                    arr = np.asarray(mat, dtype=float)
+                except (TypeError, ValueError, OverflowError):
+                    raise GainsError("not a matrix of numbers", place=f"{source}: {kind}.{owner}.{name}",
+                                     fix="give a list of lists of numbers") from None
                 if arr.shape != known[owner][name]:
                     raise GainsError(
                         f"shape {arr.shape} does not fit, expected {known[owner][name]}",
@@ -178,6 +188,12 @@ def check_gains(spec: Spec, gains: Gains, source: str = "gains") -> Gains:
                         place=f"{source}: {kind}.{owner}.{name}",
                         fix="replace NaN or infinite entries",
                     )
+                if arr.size and np.abs(arr).max() > MAX_GAIN:
+                    raise GainsError(
+                        f"an entry is {np.abs(arr).max():.3g} in size, larger than {MAX_GAIN:g}",
+                        place=f"{source}: {kind}.{owner}.{name}",
+                        fix="no usable design has gains this large; run `hierarchy design` to get one",
+                    )
     missing = missing_gains(spec, gains)
     if missing:
         raise GainsError(
@@ -189,17 +205,54 @@ def check_gains(spec: Spec, gains: Gains, source: str = "gains") -> Gains:
     return gains
 
 
+def _matrix(value, place: str) -> np.ndarray:
+    """A gain from JSON: a non-empty list of equally long rows of finite
+    numbers (not booleans, not text), each at most ``MAX_GAIN`` in size."""
+    if not isinstance(value, list) or not value or not all(isinstance(r, list) for r in value):
+        raise GainsError("a gain must be a list of rows, each a list of numbers", place=place,
+                         fix="write a 1x1 gain as [[value]] and a 2x2 one as [[a, b], [c, d]]")
+    width = len(value[0])
+    for row in value:
+        if len(row) != width or not row:
+            raise GainsError("the rows of this gain are empty or of different lengths", place=place,
+                             fix="give every row the same, non-zero number of entries")
+        for x in row:
+            if isinstance(x, bool) or not isinstance(x, (int, float)):
+                what = "text" if isinstance(x, str) else "null" if x is None else type(x).__name__
+                raise GainsError(f"an entry is {what}, not a number", place=place,
+                                 fix="write plain numbers, without quotes")
+            try:
+                x = float(x)
+            except OverflowError:
+                x = math.inf
+            if not math.isfinite(x):
+                raise GainsError("entries must be finite numbers", place=place,
+                                 fix="replace NaN or infinite entries")
+            if abs(x) > MAX_GAIN:
+                raise GainsError(f"an entry is {x:.3g}, larger than {MAX_GAIN:g}", place=place,
+                                 fix="no usable design has gains this large; check the file, or "
+                                     "run `hierarchy design` to get one")
+    return np.array(value, dtype=float)
+
+
 def gains_from_dict(data, source: str = "gains") -> Gains:
     """Build :class:`Gains` from the JSON form (see :func:`save_gains`)."""
     if not isinstance(data, dict):
         raise GainsError("a gains file must hold a JSON object", place=source,
                          fix="see the gains format in the README")
     if data.get("format", GAINS_FORMAT) != GAINS_FORMAT:
-        raise GainsError(f"format '{data.get('format')}' is not a gains file", place=f"{source}: format",
+        raise GainsError(f"format {json.dumps(data.get('format'))} is not a gains file",
+                         place=f"{source}: format",
                          fix=f"a gains file has \"format\": \"{GAINS_FORMAT}\"")
+    version = data.get("version", GAINS_VERSION)
+    if isinstance(version, bool) or version != GAINS_VERSION:
+        raise GainsError(f"version {json.dumps(version)} is not one this tool reads",
+                         place=f"{source}: version",
+                         fix=f"a gains file has \"version\": {GAINS_VERSION}; write the design "
+                             f"again with this version of the tool")
     unknown = set(data) - {"format", "version", "spec", "areas", "links", "note"}
     if unknown:
-        raise GainsError(f"unknown key(s) {sorted(unknown)}", place=source,
+        raise GainsError(f"unknown key(s) {', '.join(sorted(map(str, unknown)))}", place=source,
                          fix="allowed keys: format, version, spec, areas, links, note")
     out = Gains()
     for kind in ("areas", "links"):
@@ -213,16 +266,7 @@ def gains_from_dict(data, source: str = "gains") -> Gains:
                                  fix='for example {"K": [[1.0]]}')
             parsed = {}
             for name, mat in blocks.items():
-                try:
-                    arr = np.array(mat, dtype=float)
-                except (TypeError, ValueError):
-                    raise GainsError("not a matrix of numbers", place=f"{source}: {kind}.{owner}.{name}",
-                                     fix="give a list of lists of numbers") from None
-                if arr.ndim != 2:
-                    raise GainsError("a gain must be a list of lists (rows)",
-                                     place=f"{source}: {kind}.{owner}.{name}",
-                                     fix="write a 1x1 gain as [[value]]")
-                parsed[name] = arr
+                parsed[name] = _matrix(mat, f"{source}: {kind}.{owner}.{name}")
             getattr(out, kind)[owner] = parsed
     return out
 
@@ -236,9 +280,19 @@ def load_gains(path, spec: Spec | None = None) -> Gains:
     """
     try:
         with open(path, encoding="utf-8") as fh:
-            data = json.load(fh)
+            text = fh.read(MAX_GAINS_FILE + 1)
+        if len(text) > MAX_GAINS_FILE:
+            raise GainsError(f"the file is too large (more than {MAX_GAINS_FILE:,} characters)",
+                             place=str(path), fix="a gains file holds one design; check the path")
+        data = json.loads(text)
     except FileNotFoundError:
         raise GainsError("file not found", place=str(path), fix="check the path to the gains file") from None
+    except IsADirectoryError:
+        raise GainsError("this is a folder, not a gains file", place=str(path),
+                         fix="give the path of a .json gains file") from None
+    except RecursionError:
+        raise GainsError("the JSON is nested too deeply", place=str(path),
+                         fix="a gains file is only a few levels deep; check the file") from None
     except (OSError, UnicodeDecodeError) as exc:
         raise GainsError(f"cannot read it ({exc.__class__.__name__})", place=str(path),
                          fix="check the file's permissions and that it is a text file") from None

@@ -1,38 +1,186 @@
-"""Atomic file output: a result is written to a temporary file beside the
-target and renamed over it, so an existing file is never half-overwritten."""
+"""Atomic file output, and paths the tool makes up itself.
+
+Every file the tool writes (results, gains, tables, pictures, the schema) is
+written to a temporary file beside the target, flushed to disk and renamed
+over the target, so an existing file is never half-overwritten: a crash, a
+full disk or Ctrl-C leaves either the old file or the new one, and no
+temporary file behind.
+
+The files written by this process are logged, so that an interrupted command
+can say which of its outputs were written (:func:`mark`,
+:func:`written_since`). File names the tool generates (for example one file
+per study point) go through :func:`path_inside`, which refuses any name that
+would land outside the chosen output folder.
+"""
 
 from __future__ import annotations
 
+import contextlib
 import os
+import re
 import tempfile
 
 from .errors import InputError
+
+_WRITTEN: list = []
+
+
+def _umask() -> int:
+    mask = os.umask(0)
+    os.umask(mask)
+    return mask
+
+
+def _target_folder(path: str) -> str:
+    """The folder ``path`` will be written in; refuse paths that cannot be."""
+    if not path:
+        raise InputError("the output path is empty", place="output",
+                         fix="give a file name, e.g. result.json")
+    if os.path.isdir(path):
+        raise InputError("this is a folder, not a file", place=path,
+                         fix="give a file name inside it, e.g. " + os.path.join(path, "result.json"))
+    folder = os.path.dirname(os.path.abspath(path))
+    if not os.path.isdir(folder):
+        raise InputError("the folder does not exist", place=path, fix="create the folder or choose another path")
+    return folder
+
+
+@contextlib.contextmanager
+def atomic_writer(path):
+    """Open a temporary binary file beside ``path``; on a clean exit, rename it
+    over ``path``. On any error (or Ctrl-C) the temporary file is removed and
+    an existing ``path`` is left as it was.
+
+    The new file gets the usual permissions (those of the file it replaces,
+    or the umask's), not the private ones of a temporary file.
+
+    Examples
+    --------
+    >>> with atomic_writer("figure.png") as fh:     # doctest: +SKIP
+    ...     fig.savefig(fh, format="png")
+    """
+    path = os.fspath(path)
+    folder = _target_folder(path)
+    try:
+        mode = os.stat(path).st_mode & 0o7777
+    except OSError:
+        mode = 0o666 & ~_umask()
+    try:
+        fd, tmp = tempfile.mkstemp(prefix=".tmp-", suffix=os.path.basename(path)[-40:], dir=folder)
+    except OSError as exc:
+        raise InputError(f"cannot write in this folder ({exc.strerror or exc.__class__.__name__})",
+                         place=path, fix="check the folder's permissions and free space, "
+                                         "or choose another path") from None
+    try:
+        with os.fdopen(fd, "wb") as fh:
+            yield fh
+            fh.flush()
+            os.fsync(fh.fileno())
+        os.chmod(tmp, mode)
+        os.replace(tmp, path)
+    except BaseException as exc:
+        with contextlib.suppress(OSError):
+            os.unlink(tmp)
+        if isinstance(exc, OSError):
+            raise InputError(f"the file could not be written ({exc.strerror or exc.__class__.__name__}); "
+                             f"any earlier version is untouched", place=path,
+                             fix="check the free space and permissions, or choose another path") from None
+        raise
+    _sync_folder(folder)
+    _WRITTEN.append(path)
+
+
+def _sync_folder(folder: str) -> None:
+    """Make the rename itself durable (best effort; not every system can)."""
+    with contextlib.suppress(OSError, AttributeError):
+        fd = os.open(folder, os.O_RDONLY)
+        try:
+            os.fsync(fd)
+        finally:
+            os.close(fd)
 
 
 def atomic_write_bytes(path, data: bytes) -> None:
     """Write ``data`` to ``path`` atomically.
 
+    Raises
+    ------
+    InputError
+        If the folder does not exist, ``path`` is a folder, or the write
+        fails (full disk, no permission); an existing file is then untouched.
+
     Examples
     --------
     >>> atomic_write_bytes("out.bin", b"...")   # doctest: +SKIP
     """
-    path = os.fspath(path)
-    folder = os.path.dirname(os.path.abspath(path))
-    if not os.path.isdir(folder):
-        raise InputError("the folder does not exist", place=path, fix="create the folder or choose another path")
-    fd, tmp = tempfile.mkstemp(prefix=".tmp-", suffix=os.path.basename(path)[-40:], dir=folder)
-    try:
-        with os.fdopen(fd, "wb") as fh:
-            fh.write(data)
-            fh.flush()
-            os.fsync(fh.fileno())
-        os.replace(tmp, path)
-    except BaseException:
-        if os.path.exists(tmp):
-            os.unlink(tmp)
-        raise
+    with atomic_writer(path) as fh:
+        fh.write(data)
 
 
 def atomic_write_text(path, text: str) -> None:
     """Write ``text`` (UTF-8) to ``path`` atomically."""
     atomic_write_bytes(path, text.encode("utf-8"))
+
+
+def mark() -> int:
+    """A bookmark in the log of written files (see :func:`written_since`)."""
+    return len(_WRITTEN)
+
+
+def written_since(bookmark: int) -> list:
+    """Paths written (completely) since ``bookmark``, in order."""
+    return list(_WRITTEN[bookmark:])
+
+
+_UNSAFE = re.compile(r"[^A-Za-z0-9._+-]+")
+
+
+def safe_filename(text: str, default: str = "unnamed") -> str:
+    """A file name made from free text (a spec or study name): letters,
+    digits and ``._+-`` only, other runs replaced by ``-``; never empty, never
+    hidden, never ``.`` or ``..``; at most 100 characters.
+
+    Examples
+    --------
+    >>> safe_filename("river gauge, two levels")
+    'river-gauge-two-levels'
+    >>> safe_filename("../../etc/passwd")
+    'etc-passwd'
+    """
+    name = _UNSAFE.sub("-", str(text)).strip("-.")[:100].strip("-.")
+    return name or default
+
+
+def path_inside(folder, name) -> str:
+    """``folder/name`` for a file name the tool generated, refusing any name
+    that is not a plain file name inside ``folder`` (no separators, no
+    ``..``, not absolute, no NUL).
+
+    Raises
+    ------
+    InputError
+        Naming the generated name and the folder.
+
+    Examples
+    --------
+    >>> path_inside("out", "point-3.json")
+    'out/point-3.json'
+    >>> path_inside("out", "../escape.json")
+    Traceback (most recent call last):
+    ...
+    hierarchy.errors.InputError: ../escape.json: a generated file name would be written outside the output folder `out`
+      fix: name things with letters, digits, '.', '_', '+' and '-' only
+    """
+    folder = os.fspath(folder)
+    name = os.fspath(name)
+    bad = (not name or name in (".", "..") or "\x00" in name or os.path.isabs(name)
+           or os.sep in name or (os.altsep and os.altsep in name) or "/" in name)
+    target = os.path.join(folder, name)
+    if not bad:
+        real_folder = os.path.realpath(folder)
+        bad = os.path.commonpath([real_folder, os.path.realpath(target)]) != real_folder
+    if bad:
+        raise InputError(f"a generated file name would be written outside the output folder `{folder}`",
+                         place=name or "(empty name)",
+                         fix="name things with letters, digits, '.', '_', '+' and '-' only")
+    return target

@@ -51,10 +51,17 @@ MAX_NODES = 1_000_000
 #: Limit on the world's total size, on the sum of sensor, area and link sizes.
 MAX_TOTAL_DIM = 5000
 MAX_LAG = 50
+#: A world (and a closed loop, see hierarchy.evaluate) is stable when its
+#: spectral radius is below this: a margin keeps rounding from deciding.
+STABLE_RADIUS = 1.0 - 1e-9
+#: Largest size of any number in a spec. The tool squares and multiplies
+#: them (powers, prices times powers); this keeps every product far from
+#: overflowing double precision.
+MAX_NUMBER = 1e12
 
 # A name appears inside places (``areas.NAME.lag``) and link ids (``A->B``), so
 # it must not contain the characters that build those.
-_NAME_PATTERN = r"^(?!\s*$)(?![\s\S]*->)[^\[\].]+$"
+_NAME_PATTERN = r"^(?!\s*$)(?![\s\S]*->)[^\[\].\x00-\x1f\x7f-\x9f\u2028\u2029]+$"
 _MATRIX_WORDS = ("identity", "zero")
 
 
@@ -238,12 +245,22 @@ def _check_tree(root, loader) -> None:
 
 
 def _yaml_error(err: yaml.YAMLError, where: str) -> SpecError:
+    if isinstance(err, yaml.reader.ReaderError):
+        return SpecError(
+            f"the file holds a character YAML does not allow (#x{err.character:04x}"
+            f" at character {err.position + 1})" if isinstance(err.character, int) else
+            "the file holds bytes that are not text", place=where,
+            fix="save the spec as plain UTF-8 text, without control characters")
     mark = getattr(err, "problem_mark", None) or getattr(err, "context_mark", None)
     words = [getattr(err, "context", None), getattr(err, "problem", None)]
     words = " ".join(w for w in words if w) or str(err)
+    words = " ".join(words.split())  # one line
     line = mark.line + 1 if mark else None
-    column = f", column {mark.column + 1}" if mark else ""
-    if isinstance(err, yaml.constructor.ConstructorError):
+    at = f" (line {line}, column {mark.column + 1})" if mark else ""
+    if isinstance(err, yaml.constructor.ConstructorError) and "merg" in words:
+        fix = ("a merge key (`<<:`) takes an alias of a mapping (`<<: *base`) "
+               "or a list of such aliases")
+    elif isinstance(err, yaml.constructor.ConstructorError):
         fix = "use plain YAML values only: remove the `!` tag"
     elif isinstance(err, yaml.composer.ComposerError):
         fix = ("define each anchor (`&name`) before its aliases (`*name`), "
@@ -251,9 +268,8 @@ def _yaml_error(err: yaml.YAMLError, where: str) -> SpecError:
     else:
         fix = ("check the indentation and punctuation near that line "
                "(YAML indents with spaces, never tabs)")
-    return SpecError(
-        f"the file is not valid YAML: {words} (line {line}{column})",
-        place=where, line=line, fix=fix)
+    return SpecError(f"the file is not valid YAML: {words}{at}",
+                     place=where, line=line, fix=fix)
 
 
 def _read_yaml(text: str, where: str) -> _At:
@@ -264,8 +280,9 @@ def _read_yaml(text: str, where: str) -> _At:
             f"is {MAX_DOCUMENT:,})", place=where,
             fix="a spec should be a few kilobytes; use matrix shorthand "
                 "(`identity`, a number, a diagonal list) for big blocks")
-    loader = _SpecLoader(text)
+    loader = None
     try:
+        loader = _SpecLoader(text)  # refuses non-printable characters
         root = loader.get_single_node()
         if root is None or root.tag == "tag:yaml.org,2002:null":
             raise SpecError("the file is empty", place=where,
@@ -278,6 +295,11 @@ def _read_yaml(text: str, where: str) -> _At:
                             fix="start the file with `spec: 1`")
         _check_tree(root, loader)
         data = loader.construct_document(root)
+        if not isinstance(data, _LineDict):  # a tagged mapping: `!!set {a, b}`
+            raise SpecError("the top level must be a mapping of keys "
+                            "(`spec: 1`, `world: ...`)",
+                            place=where, line=_node_line(root),
+                            fix="start the file with `spec: 1`")
     except yaml.YAMLError as err:
         raise _yaml_error(err, where) from None
     except RecursionError:
@@ -285,7 +307,8 @@ def _read_yaml(text: str, where: str) -> _At:
                         fix="flatten the structure; a spec is only a few "
                             "levels deep") from None
     finally:
-        loader.dispose()
+        if loader is not None:
+            loader.dispose()
     return _At(data, "", data.line)
 
 
@@ -307,13 +330,29 @@ def _number(at: _At) -> float:
         except OverflowError:
             x = math.inf
         if not math.isfinite(x):
-            at.fail(f"expected a finite number, got {v}",
+            at.fail(f"expected a finite number, got {_short(v)}",
                     fix="write an ordinary number (no .inf or .nan)")
         return x
     if isinstance(v, str) and _is_number_text(v):
         at.fail(f"'{v}' is text, not a number: it is in quotes",
                 fix=f"remove the quotes: {v.strip()}")
     at.fail(f"expected a number, got {_describe(v)}", fix="write a number")
+
+
+def _short(value) -> str:
+    """A number as the file wrote it, cut short if it is very long."""
+    text = str(value)
+    return text if len(text) <= 40 else f"{text[:12]}...({len(text)} digits)"
+
+
+def _bounded(at: _At, x: float) -> float:
+    """Refuse numbers too large for the computations that follow."""
+    if abs(x) > MAX_NUMBER:
+        at.fail(f"the number {_short(at.value)} is too large: numbers in a spec "
+                f"are at most {MAX_NUMBER:g} in size",
+                fix="rescale the model (for example measure in other units) so "
+                    "that its numbers are moderate")
+    return x
 
 
 def _is_number_text(text: str) -> bool:
@@ -381,10 +420,10 @@ class _Real(_Kind):
     minimum: float = 0.0
 
     def schema(self):
-        return {"type": "number", "minimum": self.minimum}
+        return {"type": "number", "minimum": self.minimum, "maximum": MAX_NUMBER}
 
     def check(self, at):
-        x = _number(at)
+        x = _bounded(at, _number(at))
         if x < self.minimum:
             at.fail(f"must be at least {self.minimum:g}, got {at.value}",
                     fix=f"use a value of {self.minimum:g} or more")
@@ -419,6 +458,10 @@ class _Name(_Kind):
         if not name.strip():
             at.fail("a name cannot be empty or only spaces",
                     fix="give it a visible name")
+        if not name.isprintable():
+            at.fail(f"the name '{name}' contains a control character or a "
+                    f"line break", fix="use letters, digits, spaces and "
+                                       "punctuation only")
         if "->" in name:
             at.fail(f"the name '{name}' contains '->', which separates the "
                     "two ends of a link id", fix="rename it without '->'")
@@ -531,7 +574,7 @@ class _Matrix(_Kind):
             at.fail(f"expected a matrix, got {_describe(v)}",
                     fix=_suggest(v, _MATRIX_WORDS) + ", a number or a list")
         if not isinstance(v, list):
-            return _Shorthand("number", _number(at), at)
+            return _Shorthand("number", _bounded(at, _number(at)), at)
         if not v:
             at.fail("a matrix cannot be an empty list",
                     fix="write numbers, a list of lists, `identity` or `zero`")
@@ -548,10 +591,13 @@ class _Matrix(_Kind):
     def _entries(at: _At) -> np.ndarray:
         # Fast path for the usual case; the slow path finds the bad entry.
         if all(type(x) in (int, float) for x in at.value):
-            arr = np.array(at.value, dtype=float)
-            if np.isfinite(arr).all():
+            try:
+                arr = np.array(at.value, dtype=float)
+            except OverflowError:  # an integer beyond double precision
+                arr = np.array([math.inf])
+            if np.isfinite(arr).all() and np.abs(arr).max() <= MAX_NUMBER:
                 return arr
-        return np.array([_number(item) for item in _items(at)])
+        return np.array([_bounded(item, _number(item)) for item in _items(at)])
 
     @classmethod
     def _rows(cls, at: _At) -> np.ndarray:
@@ -919,14 +965,18 @@ def spec_schema() -> dict:
                                "a flat list (the diagonal), a list of lists "
                                "(row by row), `identity` or `zero`",
                 "anyOf": [
-                    {"type": "number"},
+                    {"$ref": "#/$defs/entry"},
                     {"enum": list(_MATRIX_WORDS)},
                     {"type": "array", "minItems": 1,
-                     "items": {"type": "number"}},
+                     "items": {"$ref": "#/$defs/entry"}},
                     {"type": "array", "minItems": 1,
                      "items": {"type": "array", "minItems": 1,
-                               "items": {"type": "number"}}},
+                               "items": {"$ref": "#/$defs/entry"}}},
                 ]},
+            "entry": {
+                "type": "number", "minimum": -MAX_NUMBER, "maximum": MAX_NUMBER,
+                "description": f"a matrix entry: a plain number, at most "
+                               f"{MAX_NUMBER:g} in size"},
         },
     }
 
@@ -956,8 +1006,9 @@ def _covariance(matrix: _Shorthand, n: int, why: str) -> np.ndarray:
     if np.abs(cov - cov.T).max() > 1e-9 * scale:
         matrix.at.fail("a covariance must be symmetric, and this one is not",
                        fix="make entry [i][j] equal to entry [j][i]")
-    eig = np.linalg.eigvalsh(cov)
-    if eig.min() < -1e-10 * max(1.0, np.abs(eig).max()):
+    eig = _eigenvalues(cov)
+    # Relative to the largest eigenvalue, at any scale (1e-12 noises too).
+    if eig.min() < -1e-10 * np.abs(eig).max():
         matrix.at.fail(f"a covariance must be positive semidefinite, and this "
                        f"one has the negative eigenvalue {eig.min():.3g}",
                        fix="check the signs and make the off-diagonal "
@@ -965,8 +1016,17 @@ def _covariance(matrix: _Shorthand, n: int, why: str) -> np.ndarray:
     return cov
 
 
+def _eigenvalues(cov: np.ndarray) -> np.ndarray:
+    """Eigenvalues of a symmetric matrix; a diagonal one (every shorthand but
+    a list of lists) needs no decomposition, which matters at size 5000."""
+    diagonal = np.diagonal(cov)
+    if np.count_nonzero(cov) == np.count_nonzero(diagonal):
+        return np.sort(diagonal)
+    return np.linalg.eigvalsh(cov)
+
+
 def _positive_definite(cov: np.ndarray) -> bool:
-    eig = np.linalg.eigvalsh(cov)
+    eig = _eigenvalues(cov)
     return eig.max() > 0 and eig.min() > 1e-12 * eig.max()
 
 
@@ -990,9 +1050,9 @@ def _parse_world(fields: _Fields) -> World:
                  "the sizes of the world's state blocks")
     world = World(tuple(_state_block(name, f, dims) for name, f in states))
     radius = float(np.abs(np.linalg.eigvals(world.A)).max())
-    if radius >= 1:
+    if not radius < STABLE_RADIUS:
         fields.at.fail(f"the world's dynamics have spectral radius "
-                       f"{radius:.6g}; a stationary regime needs < 1",
+                       f"{radius:.12g}; a stationary regime needs < 1",
                        fix="shrink the dynamics (and driven_by blocks) so that "
                            "every mode decays, e.g. 0.99 instead of 1 for a "
                            "slow drift")
@@ -1073,7 +1133,18 @@ def _parse_areas(pairs: list, at: _At, world: World, sensors: tuple) -> tuple:
     sensor_names = {s.name for s in sensors}
     drafts = [_area_draft(name, f, sizes, sensor_names) for name, f in pairs]
     _check_total(at, [dim for *_, dim in drafts], "the areas' sizes")
-    return tuple(_area(*draft) for draft in drafts)
+    areas = tuple(_area(*draft) for draft in drafts)
+    # A lag L keeps L delayed copies of the whole world in the closed loop.
+    deepest = max(areas, key=lambda a: a.lag)
+    if world.dim * (deepest.lag + 1) > MAX_TOTAL_DIM:
+        f = next(f for name, f, *_ in drafts if name == deepest.name)
+        f.pos("lag").fail(
+            f"too large: lag {deepest.lag} keeps {deepest.lag} delayed copies of "
+            f"the world (size {world.dim}), {world.dim * (deepest.lag + 1)} "
+            f"numbers in all; the limit is {MAX_TOTAL_DIM}",
+            fix=f"use a lag of at most {MAX_TOTAL_DIM // world.dim - 1}, or a "
+                f"smaller world")
+    return areas
 
 
 def _area_draft(name: str, f: _Fields, sizes: dict, sensor_names: set):
