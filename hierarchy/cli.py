@@ -157,6 +157,107 @@ def cmd_render(args) -> int:
     return 0
 
 
+def _study_setup(args, specs, kind, show=(), coords=()):
+    """Everything a study checks before it designs anything: designer
+    options, output base, plot path and the columns asked for."""
+    import os
+
+    from .design import Options
+    from .plots import check_plot_path
+    from .studies import check_columns, output_base
+
+    base = output_base(args.out or f"{os.path.splitext(os.path.basename(args.specs[0]))[0]}-{kind}")
+    plot = None if args.no_plot else (args.plot or f"{base}.png")
+    if plot:
+        check_plot_path(plot)
+    check_columns(specs, show, coords)
+    return Options(restarts=args.restarts, max_iter=args.max_iter, seed=args.seed), base, plot
+
+
+def _study_finish(args, study, base, plot, show=None) -> int:
+    from .plots import save_study_plot
+    from .studies import study_text
+
+    print(study_text(study, show))
+    print(f"\nwrote {base}.csv and {base}.json (finished points kept in {base}.parts/)")
+    if plot:
+        save_study_plot(study, plot, show=show or None, log_y=getattr(args, "log_y", False))
+        print(f"wrote {plot}")
+    return 1 if any(r.get("status") == "failed" for r in study.rows) else 0
+
+
+def _run_kw(args) -> dict:
+    return {"workers": args.workers, "dask": args.dask, "warm": not args.cold,
+            "progress": not args.no_progress, "fresh": args.fresh}
+
+
+def cmd_sweep(args) -> int:
+    from .studies import grid, parse_path, parse_show, sweep
+
+    args.specs = [args.spec]
+    spec = _load(args.spec).spec
+    parse_path(spec, args.path)
+    show = parse_show(args.show)
+    opts, base, plot = _study_setup(args, [spec], "sweep", show, [args.path])
+    values = grid(args.start, args.stop, args.points, args.log)
+    study = sweep(spec, args.path, values, opts, log=args.log, output=base, **_run_kw(args))
+    return _study_finish(args, study, base, plot, show)
+
+
+def cmd_phase(args) -> int:
+    from .studies import grid, parse_path, parse_range, phase_map
+
+    args.specs = [args.spec]
+    spec = _load(args.spec).spec
+    parse_path(spec, args.x)
+    parse_path(spec, args.y)
+    opts, base, plot = _study_setup(args, [spec], "phase", [args.show], [args.x, args.y])
+    xs = grid(*parse_range(args.x_range, "--x-range"), log=args.x_log)
+    ys = grid(*parse_range(args.y_range, "--y-range"), log=args.y_log)
+    study = phase_map(spec, args.x, xs, args.y, ys, opts, x_log=args.x_log, y_log=args.y_log, output=base,
+                      **_run_kw(args))
+    return _study_finish(args, study, base, plot, [args.show])
+
+
+def cmd_compare(args) -> int:
+    from .studies import compare, grid, parse_range
+
+    specs = [_load(path).spec for path in args.specs]
+    opts, base, plot = _study_setup(args, specs, "compare")
+    totals = grid(*parse_range(args.budgets, "--budgets"), log=args.log)
+    study = compare(specs, totals, opts, log=args.log, output=base, tie_rtol=args.tie, **_run_kw(args))
+    return _study_finish(args, study, base, plot)
+
+
+def cmd_generate(args) -> int:
+    from .generate import write_spec
+    from .spec import load_spec
+
+    write_spec(args.output, areas=args.areas, levels=args.levels, density=args.density, seed=args.seed,
+               area_dim=args.area_dim, world_dim=args.world_dim, max_lag=args.max_lag, relays=args.relays,
+               budgets=args.budgets)
+    spec = load_spec(args.output)
+    print(f"wrote {args.output}: {len(spec.areas)} areas, {len(spec.sensors)} sensors, {len(spec.links)} links, "
+          f"world of {spec.world.dim} states" + (f", {len(spec.budgets)} budgets" if spec.budgets else ""))
+    return 0
+
+
+def _study_arguments(s, kind):
+    s.add_argument("--out", metavar="BASE", help=f"write BASE.csv, BASE.json and keep finished points in "
+                                                 f"BASE.parts/ (default: the spec's name + '-{kind}')")
+    s.add_argument("--plot", metavar="PATH", help="picture to write (.png, .svg or .pdf; default BASE.png)")
+    s.add_argument("--no-plot", action="store_true", help="write no picture")
+    s.add_argument("--workers", type=int, help="parallel chunks: local processes (default min(2, CPUs)); "
+                                               "with --dask, chunks sent (default: the cluster's threads)")
+    s.add_argument("--dask", metavar="ADDRESS", help="run on an existing Dask cluster, e.g. tcp://host:8786")
+    s.add_argument("--cold", action="store_true", help="no warm starts: design every point from scratch")
+    s.add_argument("--fresh", action="store_true", help="ignore finished points of an earlier run")
+    s.add_argument("--no-progress", action="store_true", help="no progress bar")
+    s.add_argument("--restarts", type=int, default=4, help="starting points of a cold design (default 4)")
+    s.add_argument("--max-iter", type=int, default=3000, help="solver iteration limit (default 3000)")
+    s.add_argument("--seed", type=int, default=0, help="seed of the random starts")
+
+
 def build_parser() -> argparse.ArgumentParser:
     p = _Parser(prog="hierarchy", description="Design multi-area predictive circuits under energy limits.")
     p.add_argument("--version", action="version", version=f"hierarchy {__import__('hierarchy').__version__}")
@@ -208,17 +309,138 @@ def build_parser() -> argparse.ArgumentParser:
     s.add_argument("--spec", metavar="SPEC", help="the spec the result came from (optional; the result "
                                                   "alone is enough)")
     s.set_defaults(run=cmd_render)
+
+    s = sub.add_parser("sweep", help="design at every value of one spec value (CSV, JSON, plot)",
+                       description="Vary one spec value over a grid and design every point, warm-started from "
+                                   "its neighbour. PATH is links[FROM->TO].price or .noise, budgets[NAME].total, "
+                                   "areas[NAME].weight or .activity_price, sensors[NAME].noise, "
+                                   "world.states[NAME].noise or .dynamics (a noise or dynamics is set to the "
+                                   "number times the identity). Rerunning an interrupted sweep resumes it.")
+    s.add_argument("spec")
+    s.add_argument("path", metavar="PATH", help="the value to vary, e.g. 'links[low->high].price'")
+    s.add_argument("--from", dest="start", type=float, required=True, help="first value")
+    s.add_argument("--to", dest="stop", type=float, required=True, help="last value")
+    s.add_argument("--points", type=int, default=20, help="grid points (default 20)")
+    s.add_argument("--log", action="store_true", help="evenly spaced in logarithm")
+    s.add_argument("--show", metavar="COLUMNS", help="columns to plot, comma-separated, e.g. "
+                                                     "'links[a->s].power,areas[a].error' (default: every link's "
+                                                     "power and every area's error)")
+    s.add_argument("--log-y", action="store_true", help="logarithmic value axes in the plot")
+    _study_arguments(s, "sweep")
+    s.set_defaults(run=cmd_sweep)
+
+    s = sub.add_parser("phase", help="which links are silent over a grid of two values",
+                       description="Design every point of a grid of two spec values (paths as in `sweep`) and "
+                                   "map which links are silent, with the boundaries drawn, beside one quantity.")
+    s.add_argument("spec")
+    s.add_argument("--x", required=True, metavar="PATH", help="value on the horizontal axis")
+    s.add_argument("--x-range", required=True, metavar="LO:HI:N", help="N values from LO to HI")
+    s.add_argument("--x-log", action="store_true", help="x values evenly spaced in logarithm")
+    s.add_argument("--y", required=True, metavar="PATH", help="value on the vertical axis")
+    s.add_argument("--y-range", required=True, metavar="LO:HI:N")
+    s.add_argument("--y-log", action="store_true")
+    s.add_argument("--show", default="objective", metavar="COLUMN",
+                   help="quantity mapped beside the silent sets (default objective)")
+    _study_arguments(s, "phase")
+    s.set_defaults(run=cmd_phase)
+
+    s = sub.add_parser("compare", help="Pareto fronts of several architectures over a range of budgets",
+                       description="Design each spec in budget form at every total budget: each spec's budget "
+                                   "named `total` (or its only budget) is set to each value. Draws the fronts "
+                                   "(weighted error against energy used) and tells which spec is best where.")
+    s.add_argument("specs", nargs="+", metavar="SPEC")
+    s.add_argument("--budgets", required=True, metavar="LO:HI:N", help="N totals from LO to HI")
+    s.add_argument("--log", action="store_true", help="totals evenly spaced in logarithm")
+    s.add_argument("--tie", type=float, default=1e-5, metavar="RTOL",
+                   help="objectives closer than this (relative) tie (default 1e-5)")
+    _study_arguments(s, "compare")
+    s.set_defaults(run=cmd_compare)
+
+    s = sub.add_parser("generate", help="write a synthetic layered circuit (for tests and benchmarks)",
+                       description="A world with one block per level, probes at the bottom, residuals and "
+                                   "predictions between neighbouring levels, and a --density fraction of the "
+                                   "possible level-skipping and lateral links. The same options give the same file.")
+    s.add_argument("--areas", type=int, required=True, help="number of areas")
+    s.add_argument("--levels", type=int, required=True, help="number of levels (and of world blocks)")
+    s.add_argument("--density", type=float, default=0.2, help="fraction of skip and lateral links (default 0.2)")
+    s.add_argument("--seed", type=int, default=0, help="seed of every random choice")
+    s.add_argument("--area-dim", type=int, default=2, help="size of each area's state (default 2)")
+    s.add_argument("--world-dim", type=int, help="size of the world, a multiple of --levels "
+                                                 "(default levels x area-dim)")
+    s.add_argument("--max-lag", type=int, default=0, help="areas get lags from 0 to this (default 0)")
+    s.add_argument("--relays", type=float, default=0.0, help="fraction of areas above level 1 that are relays")
+    s.add_argument("--budgets", action="store_true",
+                   help="one budget per level over the links sent from it, instead of prices")
+    s.add_argument("-o", "--output", required=True, metavar="PATH", help="spec file to write (YAML)")
+    s.set_defaults(run=cmd_generate)
     return p
+
+
+def _planned_outputs(args) -> list:
+    """The files this command was asked to write (inputs excluded)."""
+    names = ["json", "plot", "output"] + (["gains"] if args.command == "design" else [])
+    out = [getattr(args, n, None) for n in names]
+    base = getattr(args, "out", None)
+    if base:
+        out += [f"{base}.csv", f"{base}.json"]
+    return [str(p) for p in out if isinstance(p, str) and p]
+
+
+def _check_outputs(args) -> None:
+    """Refuse an output that would overwrite an input, or another output."""
+    import os
+
+    inputs = [getattr(args, n, None) for n in ("spec", "start", "result")]
+    inputs += list(getattr(args, "specs", None) or [])
+    if args.command != "design":
+        inputs.append(getattr(args, "gains", None))
+    seen = {}
+    for path in [p for p in inputs if isinstance(p, str) and p]:  # sweep's --from is a number
+        seen.setdefault(os.path.realpath(path), ("input", path))
+    for path in _planned_outputs(args):
+        key = os.path.realpath(path)
+        if key in seen:
+            what, first = seen[key]
+            raise InputError(f"this output would overwrite the {what} {first}", place=path,
+                             fix="give each output its own file name")
+        seen[key] = ("output", path)
+
+
+def _interrupted(args, written: list) -> str:
+    """Where things stand after Ctrl-C: what was written, what was not."""
+    def listing(paths):
+        return ", ".join(paths[:5]) + (f" and {len(paths) - 5} more" if len(paths) > 5 else "")
+
+    done = set(written)
+    pending = [p for p in _planned_outputs(args) if p not in done]
+    text = f"interrupted (Ctrl-C) during `{args.command}`: "
+    text += f"wrote {listing(written)} before the interrupt" if written else "no file was written"
+    if pending:
+        text += f"; not written: {listing(pending)} (any earlier file there is untouched)"
+    return text + ". No file is ever left half-written."
+
+
+def _show_warning(message, category, filename, lineno, file=None, line=None):
+    """Python warnings (numerical ones from numpy or scipy) as one plain line."""
+    print(f"warning: {category.__name__}: {' '.join(str(message).split())}", file=sys.stderr)
 
 
 def main(argv=None) -> int:
     """Entry point of the ``hierarchy`` command."""
+    import warnings
+
+    from . import io
+
     args = build_parser().parse_args(argv)
+    bookmark = io.mark()
     try:
-        return args.run(args)
+        _check_outputs(args)
+        with warnings.catch_warnings():
+            warnings.showwarning = _show_warning
+            return args.run(args)
     except HierarchyError as err:
         print(f"error: {err}", file=sys.stderr)
         return EXIT_USAGE
     except KeyboardInterrupt:
-        print("interrupted: no output file was left half-written", file=sys.stderr)
+        print(_interrupted(args, io.written_since(bookmark)), file=sys.stderr)
         return 130

@@ -15,7 +15,7 @@ from hierarchy.simulate import simulate
 from hierarchy.spec import load_spec
 
 ROOT = Path(__file__).resolve().parents[1]
-EXAMPLES = sorted(p.stem for p in (ROOT / "specs").glob("*.yaml"))
+EXAMPLES = sorted(p.name[:-len(".gains.json")] for p in (ROOT / "specs").glob("*.gains.json"))
 
 
 def run(*args):
