@@ -19,7 +19,7 @@ import numpy as np
 
 from .closedloop import assemble
 from .evaluate import Scores, link_covariances, link_powers, loop_radius, score
-from .gains import Gains, check_gains, with_pins
+from .gains import Gains, with_pins
 from .model import Spec
 from .problem import BudgetPenalty, Problem
 from .solver import CONVERGED, FAILED, ITERATION_LIMIT, minimise
@@ -293,8 +293,10 @@ def _wake_silent(prob: Problem, best):
 def _best_receiver_step(prob: Problem, theta, receiver_slices, f0):
     """Along minus the receiver gradient, step to the minimum of a parabola
     fitted through the objective; return the point if it beats ``f0``."""
+    if not receiver_slices:  # a prediction into a sensor: no receiver gain to step
+        return None
     f, g = prob.value_and_grad(theta)
-    if g is None or not receiver_slices:
+    if g is None:
         return None
     d = np.zeros_like(theta)
     for sl in receiver_slices:

@@ -13,7 +13,7 @@ from dataclasses import dataclass, field
 import numpy as np
 import scipy.linalg as sla
 
-from .closedloop import ClosedLoop, Layout, assemble
+from .closedloop import ClosedLoop, Layout
 from .errors import UnstableError
 from .gains import Gains, check_gains, with_pins
 from .model import Spec
@@ -40,21 +40,6 @@ def loop_radius(loop: ClosedLoop) -> float:
     block (and the world's own radius) need eigenvalues."""
     lay = loop.layout
     return max(spectral_radius(lay.A_aug), spectral_radius(loop.Phi[lay.nx:, lay.nx:]))
-
-
-def stationary_covariance(loop: ClosedLoop) -> np.ndarray:
-    """``Sigma`` solving ``Sigma = Phi Sigma Phi' + Gamma Omega Gamma'``."""
-    V = loop.Gamma @ loop.layout.Omega @ loop.Gamma.T
-    S = sla.solve_discrete_lyapunov(loop.Phi, V)
-    return 0.5 * (S + S.T)
-
-
-def joint_covariance(layout: Layout, Sigma: np.ndarray) -> np.ndarray:
-    """``Cov([xi; nu]) = blkdiag(Sigma, Omega)`` (xi(t) and nu(t) are independent)."""
-    Cq = np.zeros((layout.nq, layout.nq))
-    Cq[:layout.nxi, :layout.nxi] = Sigma
-    Cq[layout.nxi:, layout.nxi:] = layout.Omega
-    return Cq
 
 
 @dataclass
@@ -223,7 +208,6 @@ class _Solution:
 
     parts: object
     schur: _Schur
-    radius: float
     Sigma: np.ndarray
     HS: np.ndarray          # H Sigma (link rows over xi)
     row_power: np.ndarray   # E s_i^2 for every link row
@@ -258,7 +242,7 @@ def _solve(layout: Layout, g: np.ndarray):
     HS = p.H @ Sigma
     row_power = np.einsum("ij,ij->i", HS, p.H) + np.einsum("ij,ij->i", p.Gv @ st.Omega_v, p.Gv)
     row_power += np.bincount(st.P.rows, weights=p.P_omega * p.p, minlength=st.m)
-    return radius, _Solution(p, sch, radius, Sigma, HS, row_power)
+    return radius, _Solution(p, sch, Sigma, HS, row_power)
 
 
 def area_radius(layout: Layout, g: np.ndarray) -> float:

@@ -729,21 +729,22 @@ def test_catalogue_templates_follow_helpers_and_conditionals():
 @pytest.mark.xfail(strict=True, reason=(
     "solver/problem: convergence tests are relative to max(1, |J/prior|), so when the optimum "
     "is a small fraction of the prior (high SNR) the designer stops early and says 'converged' "
-    "with an objective ~170x the optimum (s2=1e3, N=1e-6, price=1e-3: 0.345 vs 0.002)"))
-def test_high_snr_design_is_right_when_it_says_converged():
-    J, _ = uncoded_priced_optimum(1e3, 1e-6, 1e-3)
-    res = design_prices(uncoded(1e3, 1e-6, price=1e-3), OPTS)
+    "with a wrong objective: 50 of the 343 points (s2, N, price) in {1e-9, 1e-6, ..., 1e9}^3 "
+    "of the uncoded-transmission closed form, e.g. s2=1e3, N=1e-6, price=1e-3: 0.345 vs 0.002"))
+@pytest.mark.parametrize("s2,N,price", [(1e3, 1e-6, 1e-3), (1e6, 1e-6, 1e-6), (1.0, 1e-9, 1e-3),
+                                        (1e3, 1.0, 1e-9)])
+def test_high_snr_design_is_right_when_it_says_converged(s2, N, price):
+    J, _ = uncoded_priced_optimum(s2, N, price)
+    res = design_prices(uncoded(s2, N, price=price), OPTS)
     assert res.status != "converged" or res.objective == pytest.approx(J, rel=1e-6)
 
 
-@pytest.mark.xfail(strict=True, reason=(
-    "solver/problem: the same early stop near a unit-root world: a = 0.9999999 (prior 5e4, "
-    "optimum 0.105, i.e. 2e-6 of the prior) is 'converged' 9e-6 above the Riccati error"))
-def test_unit_root_world_is_right_when_it_says_converged():
+def test_unit_root_world():
+    # Was a bug (an early stop when the optimum is 2e-6 of the prior); fixed in the solver.
     res = design_prices(kalman(0.9999999, 0.01, 1.0), OPTS)
-    assert res.scores.radius < 1
-    assert res.status != "converged" or \
-        res.scores.areas["v"].error == pytest.approx(riccati(0.9999999, 0.01, 1.0), rel=1e-6)
+    assert_honest(res)
+    assert res.status == "converged"
+    assert res.scores.areas["v"].error == pytest.approx(riccati(0.9999999, 0.01, 1.0), rel=1e-6)
 
 
 # Was a bug (CVXPY on unscaled numbers); the allocation step now works in scaled units.
