@@ -8,6 +8,11 @@ can differ; each child also times one ``scipy.linalg.solve_discrete_lyapunov``
 of its closed loop's size (a random stable matrix, median of several) and
 every time is printed beside its ratio to that baseline.
 
+Children run with single-threaded BLAS unless ``--threads`` says otherwise:
+the matrices here are small (at most a few hundred rows), and on a busy
+2-core machine OpenBLAS's worker threads cost far more than they give (the
+thread comparison at the end shows how much).
+
 It prints
 
 * the targets of issue 5 at 32 areas / 302 links: price-form design <= 60 s,
@@ -21,6 +26,7 @@ It prints
 * the 32-area price-form design with ``OPENBLAS_NUM_THREADS`` 1 and 2.
 
     python benchmarks/scale.py            # everything (about 15 minutes)
+    python benchmarks/scale.py --threads inherit   # children keep this shell's BLAS setting
     python benchmarks/scale.py --quick    # table to 16 areas, no 4x check, no thread comparison
     python benchmarks/scale.py --profile  # also cProfile one value-and-gradient at 32 areas
 
@@ -121,10 +127,16 @@ def child(job: dict) -> dict:
     return out
 
 
+#: BLAS threads of the children ("inherit": this process's environment).
+THREADS = {"value": "1"}
+
+
 def measure(job: dict, threads: str | None = None) -> dict:
-    """Run ``child(job)`` in a fresh interpreter (optionally with a BLAS thread count)."""
+    """Run ``child(job)`` in a fresh interpreter with ``threads`` BLAS threads
+    (default: the ``--threads`` option)."""
     env = dict(os.environ)
-    if threads is not None:
+    threads = THREADS["value"] if threads is None else threads
+    if threads != "inherit":
         env["OPENBLAS_NUM_THREADS"] = env["OMP_NUM_THREADS"] = threads
     done = subprocess.run([sys.executable, os.path.abspath(__file__), "--child", json.dumps(job)],
                           env=env, capture_output=True, text=True)
@@ -166,19 +178,23 @@ def main(argv=None) -> int:
     ap = argparse.ArgumentParser(description=__doc__.splitlines()[0])
     ap.add_argument("--quick", action="store_true", help="table to 16 areas; skip the 4x check and thread runs")
     ap.add_argument("--profile", action="store_true", help="also profile one value-and-gradient at 32 areas")
+    ap.add_argument("--threads", default="1",
+                    help="BLAS threads of the measuring children (default 1; 'inherit' keeps the environment's)")
     ap.add_argument("--child", help=argparse.SUPPRESS)
     args = ap.parse_args(argv)
     if args.child:
         print(json.dumps(child(json.loads(args.child))))
         return 0
+    THREADS["value"] = args.threads
 
     import numpy as np
     import scipy
 
     t_start = time.perf_counter()
     print("scale: exact evaluation and designer on generated layered circuits")
-    for line in blas_lines():
-        print("  " + line)
+    print("  this process: " + "; ".join(blas_lines()))
+    first = measure({"areas": 2, "evaluate": False})
+    print(f"  measuring children (--threads {args.threads}): " + "; ".join(first["blas"]))
     print(f"  python {platform.python_version()}, numpy {np.__version__}, scipy {scipy.__version__}; "
           f"load average at start {os.getloadavg()[0]:.1f}")
     print(f"  circuits: hierarchy.generate, areas A on A/2 levels, area dim 2, world dim A, "
