@@ -369,7 +369,6 @@ class Parts:
     ``Pm``'s entries.
     """
 
-    g: np.ndarray
     B: np.ndarray
     H: np.ndarray
     Phi_z: np.ndarray
@@ -513,4 +512,4 @@ class Structure:
         Q2_omega = self.Omega_eta.matmul(self.omega_eta, Q2.T).T
         dst, src, val = self.p_omega
         P_omega = np.bincount(dst, weights=p[src] * val, minlength=len(p))
-        return Parts(g, B, H, Phi_z, Gv, p, k, self.Km.matmul(k, Gv), Q2, Q2_omega, P_omega)
+        return Parts(B, H, Phi_z, Gv, p, k, self.Km.matmul(k, Gv), Q2, Q2_omega, P_omega)
