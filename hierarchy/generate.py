@@ -153,7 +153,7 @@ def generate_spec_text(areas: int, levels: int, density: float, seed: int, area_
         A = _dynamics(rng, tier, radius)
         q = 0.1 * (1.0 - radius ** 2)  # every tier's own variance about 0.1
         # Coupling 0.5 (1 - radius): a slow input is summed over ~1/(1 - radius) steps.
-        drivers = range(2, levels + 1) if k == 1 else range(k + 1, min(k + 2, levels + 1))
+        drivers = range(2, levels + 1) if k == 1 else [k + 1] if k < levels else []
         coupling = {j: 0.5 * (1.0 - radius) * rng.standard_normal((tier, tier)) / np.sqrt(tier) for j in drivers}
         line = f"    tier-{k}: {{dim: {tier}, dynamics: {_mat(A)}, noise: {_num(q)}"
         if coupling:
