@@ -393,6 +393,13 @@ NASTY = st.one_of(
 )
 
 
+def fresh(value):
+    """A private copy of a drawn value: ``sampled_from`` hands out the same
+    list or dict every time, and a later mutation must not change it for
+    the examples that follow."""
+    return copy.deepcopy(value)
+
+
 def _paths(tree, prefix=()):
     """Every path to a node of a tree (dict keys and list indices)."""
     yield prefix
@@ -441,7 +448,7 @@ def mutated_trees(draw):
             break
         if kind == "replace":
             path = draw(st.sampled_from(paths))
-            tree = _set(tree, path, draw(NASTY))
+            tree = _set(tree, path, fresh(draw(NASTY)))
         elif kind == "delete":
             path = draw(st.sampled_from([p for p in paths if p] or [()]))
             if path:
@@ -470,8 +477,8 @@ def mutated_trees(draw):
         elif kind == "non-psd":
             noisy = [p for p in paths if p and p[-1] == "noise"]
             if noisy:
-                bad = draw(st.sampled_from([-0.1, [1, -1], [[1, 2], [2, 1]], [[1, 0.5], [0, 1]],
-                                            [[1, 0], [0, -1e-3]], [[0, 1], [1, 0]]]))
+                bad = fresh(draw(st.sampled_from([-0.1, [1, -1], [[1, 2], [2, 1]], [[1, 0.5], [0, 1]],
+                                                  [[1, 0], [0, -1e-3]], [[0, 1], [1, 0]]])))
                 tree = _set(tree, draw(st.sampled_from(noisy)), bad)
         elif kind == "shape":
             mats = [p for p in paths if p and p[-1] in ("dynamics", "noise", "K", "M", "G", "S", "P")
@@ -490,7 +497,7 @@ def mutated_trees(draw):
             sections = [p for p in paths if len(p) == 1] + [("world", "states")]
             path = draw(st.sampled_from(sections))
             try:
-                tree = _set(tree, path, draw(st.sampled_from([{}, [], "", None, 0])))
+                tree = _set(tree, path, fresh(draw(st.sampled_from([{}, [], "", None, 0]))))
             except (KeyError, TypeError):
                 pass
         elif kind == "cycle":
@@ -500,8 +507,10 @@ def mutated_trees(draw):
             names = [n for n in states if isinstance(states[n], dict)]
             if len(names) >= 2:
                 a, b = names[0], names[1]
-                states[a].setdefault("driven_by", {})[b] = draw(st.sampled_from([0.5, 2.0, 0.05]))
-                states[b].setdefault("driven_by", {})[a] = draw(st.sampled_from([0.5, 2.0, 0.05]))
+                for one, other in ((a, b), (b, a)):  # each drives the other: a cycle
+                    if not isinstance(states[one].get("driven_by"), dict):
+                        states[one]["driven_by"] = {}
+                    states[one]["driven_by"][other] = draw(st.sampled_from([0.5, 2.0, 0.05]))
             areas = tree.get("areas")
             if isinstance(areas, dict) and len(areas) >= 2 and isinstance(tree.get("links", []), list):
                 a, b = list(areas)[:2]
@@ -643,7 +652,7 @@ def gains_cases(draw):
     if kind == "replace":
         paths = [p for p in _paths(gains) if p]
         path = draw(st.sampled_from(paths))
-        gains = _set(gains, path, draw(GAINS_NASTY))
+        gains = _set(gains, path, fresh(draw(GAINS_NASTY)))
     elif kind == "delete":
         paths = [p for p in _paths(gains) if len(p) in (2, 3)]
         if paths:
