@@ -22,7 +22,7 @@ from .evaluate import Scores, link_covariances, link_powers, loop_radius, score
 from .gains import Gains, with_pins
 from .model import Spec
 from .problem import BudgetPenalty, Problem
-from .solver import CONVERGED, FAILED, ITERATION_LIMIT, minimise
+from .solver import CONVERGED, F_FLOOR, FAILED, ITERATION_LIMIT, minimise
 
 #: A link sending less than this fraction of its noise power (or of its
 #: source's power, on a noiseless channel) counts as silent.
@@ -158,7 +158,8 @@ def _solve_prices(prob: Problem, opts: Options, starts=None, polish_iter=None, w
     fun = prob.value_and_grad
     probes = []
     for x0 in starts:
-        out = minimise(fun, x0, max_iter=min(opts.probe_iter, opts.max_iter), gtol=opts.gtol, ftol=opts.ftol)
+        out = minimise(fun, x0, max_iter=min(opts.probe_iter, opts.max_iter), gtol=opts.gtol, ftol=opts.ftol,
+                       unit=prob.units(x0))
         probes.append(out)
     usable = [o for o in probes if np.isfinite(o.f)]
     if not usable:
@@ -185,10 +186,13 @@ def _polish(prob: Problem, x0, opts: Options, max_iter: int, wake: bool = True, 
     converged_f = np.inf  # objective at the last converged round
     while iterations < max_iter:
         out = minimise(prob.value_and_grad, x, max_iter=min(CHUNK, max_iter - iterations),
-                       gtol=opts.gtol, ftol=opts.ftol)
+                       gtol=opts.gtol, ftol=opts.ftol, unit=prob.units(x))
         iterations += out.iterations
-        if best is not None and not out.f <= best.f:
+        # (Switching a link off may cost rounding, which the test allows.)
+        if best is not None and not out.f <= best.f + 1e-12 * max(abs(best.f), F_FLOOR):
             break
+        if best is not None and out.status != CONVERGED and not out.f < best.f:
+            break  # a round without progress (a line search that cannot move) would repeat
         best = out
         if not np.isfinite(best.f):
             break
@@ -201,8 +205,9 @@ def _polish(prob: Problem, x0, opts: Options, max_iter: int, wake: bool = True, 
             wakes += 1
         if best.status == CONVERGED:
             # Switching links off (or waking them) and converging again must
-            # lower the objective; otherwise the two only trade places.
-            if moved is None or not best.f < converged_f - opts.ftol * max(1.0, abs(best.f)):
+            # not raise the objective beyond rounding; otherwise the two only
+            # trade places. (Wakes are also counted: each one lowers it.)
+            if moved is None or best.f > converged_f + 1e-12 * max(abs(best.f), F_FLOOR):
                 break
             converged_f = best.f
         x = best.x if moved is None else moved
@@ -223,18 +228,24 @@ def _switch_off_fading(prob: Problem, best):
         sender = prob.sender_slices(link.id)
         if not sender or powers[link.id] > FADING * _silence_floor(prob, link) / SILENT_FRACTION * link.dim:
             continue
-        pair = f"{link.target}->{link.source}"
-        receivers = prob.receiver_slices(link.id)
-        if link.kind == "prediction" and prob.spec.is_sensor(link.target):
-            receivers = prob.slices(pair, "P")
+        receivers = _receivers(prob, link)
         trial = theta.copy()
         for sl in sender + receivers:
             trial[sl] = 0.0
         if np.any(trial != theta):
             f, _ = prob.value_and_grad(trial)
-            if np.isfinite(f) and f <= best.f + 1e-12 * max(1.0, abs(best.f)):
+            if np.isfinite(f) and f <= best.f + 1e-12 * max(abs(best.f), F_FLOOR):
                 theta, changed = trial, True
     return theta if changed else None
+
+
+def _receivers(prob: Problem, link) -> list:
+    """Slices of the gains that make use of a link's signal: its ``K``, or for
+    a prediction into a sensor (which has no state) the ``P`` of the
+    residual that subtracts it."""
+    if link.kind == "prediction" and prob.spec.is_sensor(link.target):
+        return prob.slices(f"{link.target}->{link.source}", "P")
+    return prob.receiver_slices(link.id)
 
 
 def _link_powers(prob: Problem, theta) -> dict:
@@ -277,7 +288,7 @@ def _wake_silent(prob: Problem, best):
         dead = V[:, w <= _silence_floor(prob, link)]
         if dead.shape[1] == 0:
             continue
-        rsl = prob.receiver_slices(link.id)
+        rsl = _receivers(prob, link)
         for trial in range(3):
             v = dead @ (rng.standard_normal(dead.shape[1]) if trial else np.ones(dead.shape[1]))
             r = rng.standard_normal(shape[1]) if trial else np.ones(shape[1])
@@ -293,7 +304,7 @@ def _wake_silent(prob: Problem, best):
 def _best_receiver_step(prob: Problem, theta, receiver_slices, f0):
     """Along minus the receiver gradient, step to the minimum of a parabola
     fitted through the objective; return the point if it beats ``f0``."""
-    if not receiver_slices:  # a prediction into a sensor: no receiver gain to step
+    if not receiver_slices:  # every gain that could use the signal is pinned
         return None
     f, g = prob.value_and_grad(theta)
     if g is None:
@@ -313,7 +324,7 @@ def _best_receiver_step(prob: Problem, theta, receiver_slices, f0):
     step = -slope / curvature if curvature > 0 else 10 * t
     for s in (step, 0.5 * step, 0.1 * step):
         fs, _ = prob.value_and_grad(theta + s * d)
-        if np.isfinite(fs) and fs < f0 - 1e-12 * max(1.0, abs(f0)):
+        if np.isfinite(fs) and fs < f0 - 1e-12 * max(abs(f0), F_FLOOR):
             return theta + s * d
     return None
 
@@ -441,11 +452,17 @@ def design_budgets(spec: Spec, options: Options | None = None, start: Gains | No
     best, iterations, nstarts = _solve_prices(prob, opts, starts, polish_iter=0, wake=False)
     message = ""
     excess = np.full(len(groups), np.inf)
+    # The rounds and the final polish share one budget of max_iter iterations.
+    left = opts.max_iter
     for _ in range(opts.budget_rounds):
+        if left <= 0:
+            message = f"iteration limit ({opts.max_iter}) reached before the budgets settled"
+            break
         # Multipliers are updated from a design settled under the current ones
         # (an unsettled design's powers would send them astray).
-        more, extra = _polish(prob, best.x, opts, opts.max_iter, wake=False, settled=SETTLED)
+        more, extra = _polish(prob, best.x, opts, left, wake=False, settled=SETTLED)
         iterations += extra
+        left -= extra
         best = more if np.isfinite(more.f) else best
         over = member @ _powers(prob, best.x) - totals
         new_mu = np.maximum(0.0, mu + rho * over)
@@ -468,9 +485,12 @@ def design_budgets(spec: Spec, options: Options | None = None, start: Gains | No
     else:
         message = f"budgets not met within {opts.budget_rtol:g} after {opts.budget_rounds} rounds"
     prob.penalty = BudgetPenalty(member, totals, mu, rho)
-    more, extra = _polish(prob, best.x, opts, opts.max_iter)
-    iterations += extra
-    best = more if np.isfinite(more.f) else best
+    if left > 0:
+        more, extra = _polish(prob, best.x, opts, left)
+        iterations += extra
+        best = more if np.isfinite(more.f) else best
+    elif not message:
+        message = f"iteration limit ({opts.max_iter}) reached before the final polish"
 
     theta = _meet_budgets(prob, best.x, groups, totals, mu)
     result = _finish(prob, theta, best, iterations, nstarts, time.perf_counter() - t0, "budget")

@@ -125,6 +125,25 @@ class Problem:
         """Gains (pins included) for the solver's vector ``theta``."""
         return self.layout.unflatten(self.flat(theta))
 
+    def units(self, theta: np.ndarray) -> np.ndarray:
+        """Typical size of every free entry at ``theta``, for the solver.
+
+        Noise units make 1 typical near an SNR of 1, and area gains ``M`` are
+        unitless. At high SNR a link's sender gains grow like sqrt(SNR) and
+        its receiver gains shrink alike, so a link whose sender gains have
+        RMS ``s > 1`` gets units ``s`` (sender) and ``1/s`` (receiver)."""
+        unit = np.ones(self.size)
+        for owner, blocks in self.by_owner.items():
+            sender = [sl for name, sl, shape in blocks if name in "GSP"]
+            if not sender:
+                continue
+            s = float(np.sqrt(np.mean(np.concatenate([theta[sl] for sl in sender]) ** 2)))
+            if s > 1:
+                s = min(s, 1e12)
+                for name, sl, shape in blocks:
+                    unit[sl] = s if name in "GSP" else 1.0 / s
+        return unit
+
     def area_radius(self, theta: np.ndarray) -> float:
         """Spectral radius of the area block of the closed loop at ``theta``."""
         return area_radius(self.layout, self.flat(theta))

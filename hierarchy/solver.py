@@ -19,6 +19,23 @@ import numpy as np
 
 DENSE_LIMIT = 1500
 
+#: Below this the objective has no scale of its own for the relative tests
+#: (an exact zero, or values at rounding level of the prior-relative units).
+F_FLOOR = 1e-9
+
+#: Largest relative gradient at which a stalled objective (or a line search
+#: that cannot make progress) counts as converged.
+STALL_GTOL = 1e-4
+
+#: Largest relative decrease the quasi-Newton model may still promise at a
+#: point where no step lowers the objective, for it to count as converged
+#: (at high SNR the objective is a small difference of large terms and its
+#: rounding noise hides a relative gradient well above STALL_GTOL).
+GAIN_TOL = 1e-9
+#: Up to this many variables, a point where no step helps is checked with a
+#: finite-difference Hessian of the exact gradient (one gradient per variable).
+HESSIAN_LIMIT = 200
+
 CONVERGED = "converged"
 ITERATION_LIMIT = "iteration limit"
 FAILED = "failed"
@@ -36,13 +53,19 @@ class Outcome:
     message: str
 
 
-def minimise(fun, x0, *, max_iter=500, gtol=1e-8, ftol=1e-12, memory=12, callback=None) -> Outcome:
+def minimise(fun, x0, *, max_iter=500, gtol=1e-8, ftol=1e-12, memory=12, unit=None, callback=None) -> Outcome:
     """Minimise ``fun(x) -> (f, grad)`` from ``x0``; ``f = inf`` marks a
     forbidden point (unstable loop), which the line search steps back from.
 
-    Convergence: the largest gradient entry is at most ``gtol * max(1, |f|)``,
-    or ``f`` fell by less than ``ftol * max(1, |f|)`` in each of the last three
-    iterations.
+    The variables are measured in ``unit`` (their typical sizes; default
+    ``max(|x0|, 1)``) and convergence is judged on the objective's own scale,
+    so that an optimum far below 1 (a high-SNR circuit) is not declared
+    early: the relative gradient (Dennis & Schnabel, *Numerical Methods for
+    Unconstrained Optimization and Nonlinear Equations*, 1983, sections 7.1
+    and 7.2) ``max_i |g_i| unit_i / max(|f|, F_FLOOR)`` is at most ``gtol``;
+    or ``f`` fell by less than ``ftol * max(|f|, F_FLOOR)`` in each of the
+    last three iterations while the relative gradient is at most
+    ``STALL_GTOL`` (a stall with a larger gradient is not convergence).
 
     Examples
     --------
@@ -50,20 +73,35 @@ def minimise(fun, x0, *, max_iter=500, gtol=1e-8, ftol=1e-12, memory=12, callbac
     >>> out.status, round(out.f, 12)
     ('converged', 0.0)
     """
-    x = np.array(x0, dtype=float)
-    f, g = fun(x)
+    x0 = np.array(x0, dtype=float)
+    f, g = fun(x0)
     if not np.isfinite(f):
-        return Outcome(x, f, float("inf"), 0, FAILED, "the starting point is not stable")
-    if x.size == 0:
-        return Outcome(x, f, 0.0, 0, CONVERGED, "no free gains")
+        return Outcome(x0, f, float("inf"), 0, FAILED, "the starting point is not stable")
+    if x0.size == 0:
+        return Outcome(x0, f, 0.0, 0, CONVERGED, "no free gains")
+    # Work in variables measured by their typical sizes: gains far from 1
+    # (high SNR) otherwise make the first steps, and the curvature learnt
+    # from them, useless along the large ones.
+    unit = np.maximum(np.abs(x0), 1.0) if unit is None else np.asarray(unit, dtype=float)
+    outer = fun
+
+    def fun(z):
+        f, g = outer(z * unit)
+        return f, (None if g is None else g * unit)
+
+    x, g = x0 / unit, g * unit
     curv = _Dense() if x.size <= DENSE_LIMIT else _Limited(memory)
     small_steps = 0
     for it in range(1, max_iter + 1):
         gnorm = float(np.max(np.abs(g)))
-        if gnorm <= gtol * max(1.0, abs(f)):
-            return Outcome(x, f, gnorm, it - 1, CONVERGED, f"gradient {gnorm:.2e} below tolerance")
+        grel = _relative(f, g)
+        if grel <= gtol:
+            return Outcome(x * unit, f, grel, it - 1, CONVERGED, f"relative gradient {grel:.2e} below tolerance")
         d = curv.direction(g)
         slope = float(g @ d)
+        # Decrease the quasi-Newton model still promises (half the squared
+        # Newton decrement, Boyd & Vandenberghe, Convex Optimization, 9.5.1).
+        model_gain = -0.5 * slope if curv.ready and slope < 0 else np.inf
         if slope >= 0:
             curv.reset()
             d, slope = -g, -float(g @ g)
@@ -79,17 +117,66 @@ def minimise(fun, x0, *, max_iter=500, gtol=1e-8, ftol=1e-12, memory=12, callbac
                     curv.reset()
                     d, slope, step = -g, -float(g @ g), min(1.0, 1.0 / max(gnorm, 1e-12))
                     continue
-                return Outcome(x, f, gnorm, it, CONVERGED if gnorm <= 1e-5 * max(1.0, abs(f)) else FAILED,
-                               "line search cannot make progress")
+                # No step lowers f at working precision: converged if the
+                # gradient is small or the model has (almost) nothing left to give.
+                scale = max(abs(f), F_FLOOR)
+                if grel > STALL_GTOL and not model_gain <= GAIN_TOL * scale and x.size <= HESSIAN_LIMIT:
+                    model_gain = newton_gain(fun, x, g)
+                done = grel <= STALL_GTOL or model_gain <= GAIN_TOL * scale
+                return Outcome(x * unit, f, grel, it, CONVERGED if done else FAILED,
+                               "line search cannot make progress" + (
+                                   f" (a Newton step would lower the objective by {model_gain / scale:.1e} of it)"
+                                   if done and grel > STALL_GTOL else ""))
         curv.update(x_new - x, g_new - g)
-        small_steps = small_steps + 1 if f - f_new <= ftol * max(1.0, abs(f)) else 0
+        small_steps = small_steps + 1 if f - f_new <= ftol * max(abs(f), F_FLOOR) else 0
         x, f, g = x_new, f_new, g_new
         if callback is not None:
-            callback(x, f)
+            callback(x * unit, f)
         if small_steps >= 3:
-            return Outcome(x, f, float(np.max(np.abs(g))), it, CONVERGED, "objective stopped falling")
-    return Outcome(x, f, float(np.max(np.abs(g))), max_iter, ITERATION_LIMIT,
+            grel = _relative(f, g)
+            if grel <= STALL_GTOL:
+                return Outcome(x * unit, f, grel, it, CONVERGED, "objective stopped falling")
+            # A stall on a slope: the curvature model is stale; start it afresh.
+            curv.reset()
+            small_steps = 0
+    return Outcome(x * unit, f, _relative(f, g), max_iter, ITERATION_LIMIT,
                    f"stopped after {max_iter} iterations")
+
+
+def newton_gain(fun, x, g, h=1e-6) -> float:
+    """Decrease a Newton step would bring, ``g' H^-1 g / 2``, with ``H`` the
+    central-difference Hessian of the exact gradient ``fun(x)[1]`` (steps
+    ``h`` in each variable's units); ``inf`` at a saddle, where the gradient
+    has a part along a flat direction, or if a trial point is forbidden.
+
+    Examples
+    --------
+    >>> fun = lambda x: (float(x @ x + 1), 2 * x)
+    >>> round(newton_gain(fun, np.array([1e-3, 0.0]), np.array([2e-3, 0.0])), 9)
+    1e-06
+    """
+    n = len(x)
+    H = np.empty((n, n))
+    for j in range(n):
+        e = np.zeros(n)
+        e[j] = h
+        gp, gm = fun(x + e)[1], fun(x - e)[1]
+        if gp is None or gm is None:
+            return float("inf")
+        H[:, j] = (gp - gm) / (2 * h)
+    w, V = np.linalg.eigh(0.5 * (H + H.T))
+    gv = V.T @ g
+    flat = np.abs(w) <= 1e-9 * max(np.abs(w).max(), 1e-300)
+    # Directions the objective does not feel at all (say a gain of a link
+    # that is switched off) are fine if the gradient has no part along them.
+    if np.any(w[~flat] < 0) or np.any(np.abs(gv[flat]) > 1e-9 * np.abs(g).max(initial=0.0) + 1e-300):
+        return float("inf")
+    return float(0.5 * np.sum(gv[~flat] ** 2 / w[~flat]))
+
+
+def _relative(f, g_scaled) -> float:
+    """Relative gradient from a gradient already multiplied by the units."""
+    return float(np.max(np.abs(g_scaled), initial=0.0)) / max(abs(f), F_FLOOR)
 
 
 def _curvature_ok(s, y) -> bool:
