@@ -224,6 +224,8 @@ def _solve(layout: Layout, g: np.ndarray):
     world = _world_part(layout)
     p = st.parts(g)
     nx = st.nx
+    if not np.all(np.isfinite(p.Phi_z)):  # gain products overflowed
+        return float("inf"), None
     Pzx, Pzz = p.Phi_z[:, :nx], p.Phi_z[:, nx:]
     sch = _Schur(Pzz)
     radius = max(world.radius, sch.radius)
@@ -242,6 +244,9 @@ def _solve(layout: Layout, g: np.ndarray):
     HS = p.H @ Sigma
     row_power = np.einsum("ij,ij->i", HS, p.H) + np.einsum("ij,ij->i", p.Gv @ st.Omega_v, p.Gv)
     row_power += np.bincount(st.P.rows, weights=p.P_omega * p.p, minlength=st.m)
+    if not (np.all(np.isfinite(Sigma)) and np.all(np.isfinite(row_power))):
+        # Stable on paper, but the covariances overflow: no usable regime.
+        return float("inf"), None
     return radius, _Solution(p, sch, Sigma, HS, row_power)
 
 
@@ -271,6 +276,13 @@ def _error_rows(st, sol: _Solution) -> np.ndarray:
 
 
 def _unstable(radius: float, what: str = "the closed loop") -> UnstableError:
+    if not np.isfinite(radius):
+        return UnstableError(
+            f"{what} cannot be evaluated: its gains are so large that the covariances overflow",
+            place="gains",
+            fix="use gains of a sensible size (products of gains far below 1e150); "
+                "`hierarchy design` finds stable gains",
+        )
     return UnstableError(
         f"{what} is unstable: spectral radius {radius:.6g} (a stationary regime needs < 1)",
         place="gains",
