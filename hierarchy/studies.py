@@ -78,6 +78,7 @@ from typing import Mapping
 
 import numpy as np
 
+from .blas import single_thread
 from .errors import HierarchyError, InputError
 from .io import atomic_write_text
 from .model import PREDICTION, Spec, World, frozen_array, frozen_map
@@ -434,81 +435,14 @@ def _prices_at(result) -> np.ndarray:
     return prices
 
 
-def _receiver_step(prob, theta, receivers, f0):
-    """Along minus the gradient of the receiver gains only, step to the
-    minimum of a fitted parabola; the point if it beats ``f0``, else None."""
-    f, g = prob.value_and_grad(theta)
-    if g is None:
-        return None
-    d = np.zeros_like(theta)
-    for sl in receivers:
-        d[sl] = -g[sl]
-    norm = float(np.linalg.norm(d))
-    if norm == 0 or not np.isfinite(norm):
-        return None
-    d /= norm
-    t = 1e-3
-    ft, _ = prob.value_and_grad(theta + t * d)
-    if not np.isfinite(ft):
-        return None
-    curvature = 2 * (ft - f + norm * t) / t ** 2
-    step = norm / curvature if curvature > 0 else 10 * t
-    for s in (step, 0.5 * step, 0.1 * step):
-        fs, _ = prob.value_and_grad(theta + s * d)
-        if np.isfinite(fs) and fs < f0 - 1e-9 * max(1.0, abs(f0)):
-            return theta + s * d
-    return None
-
-
-def _stuck_silent(result):
-    """Gains that wake a silent prediction into a sensor, if one pays; else None.
-
-    A switched-off link sits at a saddle (zero sender and receiver gains)
-    where the gradient says nothing. The designer tests silent links for a
-    profitable wake-up through their receiver gain ``K``; a prediction into
-    a sensor has none (its receiver is the ``P`` of the residual that
-    subtracts it), and at the time of writing it is not tested. A cold
-    design rarely ends there, but continuation from a point where such a
-    link is silent would keep it silent for ever. So: give its sender a
-    small signal (the designer's informed start, scaled down), step the
-    ``P`` along its gradient, and report the point if the objective (under
-    the prices the design is optimal for) falls.
-    """
-    from .problem import Problem
-
-    spec = result.spec
-    links = [l for l in spec.links if l.id in result.silent and l.kind == PREDICTION and spec.is_sensor(l.target)]
-    if not links:
-        return None
-    prob = Problem(spec, _prices_at(result))
-    theta0 = prob.pack(result.gains)
-    f0, _ = prob.value_and_grad(theta0)
-    informed = prob.pack(prob.informed_start())
-    for link in links:
-        block = prob.sender_block(link.id)
-        receivers = prob.slices(f"{link.target}->{link.source}", "P")
-        if block is None or not receivers:
-            continue
-        sl = block[0]
-        direction = informed[sl] if np.any(informed[sl]) else np.ones(sl.stop - sl.start)
-        for delta in (1e-2, 1e-1):
-            theta = theta0.copy()
-            theta[sl] += delta * direction
-            woken = _receiver_step(prob, theta, receivers, f0)
-            if woken is not None:
-                return prob.unpack(woken)
-    return None
-
-
 def run_point(spec: Spec, options=None, start=None) -> dict:
     """Design one point of a study.
 
     A warm-started point skips the designer's probe phase (``probe_iter``
     0): with a single start there is nothing to choose, and a probe would
-    only restart the quasi-Newton curvature once more. Every point is then
-    checked for a silent prediction into a sensor that should wake (see
-    :func:`_stuck_silent`); if one does, the point is designed again from
-    there, and the iterations of both runs are counted.
+    only restart the quasi-Newton curvature once more (the designer's own
+    wake-up tests bring back a link that was silent at the previous point
+    where it pays here).
 
     Parameters
     ----------
@@ -541,24 +475,11 @@ def run_point(spec: Spec, options=None, start=None) -> dict:
     try:
         result = design(spec, replace(opts, probe_iter=0) if start is not None else opts, start=start,
                         compare_unpinned=False)
-        spent = [result]
-        for _ in range(3):
-            woken = _stuck_silent(result)
-            if woken is None:
-                break
-            again = design(spec, replace(opts, probe_iter=0), start=woken, compare_unpinned=False)
-            spent.append(again)
-            if again.objective <= result.objective:
-                result = again
     except HierarchyError as err:
         return {"row": {"status": "failed", "converged": False, "silent_links": None,
                         "seconds": time.perf_counter() - t0, "message": str(err)}, "gains": None}
     row = _row(result)
-    row["iterations"] = sum(r.iterations for r in spent)
-    row["evaluations"] = sum(r.evaluations for r in spent)
     row["seconds"] = time.perf_counter() - t0
-    if len(spent) > 1:
-        row["message"] += f" (designed {len(spent)} times: a silent prediction into a sensor was woken)"
     return {"row": row, "gains": result.gains.to_dict()}
 
 
@@ -568,21 +489,6 @@ def _design_point(spec, options, start):
     return run_point(_restore(spec), options, None if start is None else start["gains"])
 
 
-def _single_blas():
-    """Run BLAS on one thread while a study runs (a context manager).
-
-    The matrices of one point are small: several BLAS threads per point only
-    fight, with each other and with the other workers; on a busy machine
-    OpenBLAS threads spinning for a core made designs ten times slower in
-    wall time (and twenty times in CPU). Needs threadpoolctl; without it
-    nothing changes."""
-    try:
-        from threadpoolctl import threadpool_limits
-    except ImportError:  # optional: only a speed matter
-        return contextlib.nullcontext()
-    return threadpool_limits(1)
-
-
 def _worker_init():
     """Worker processes: leave Ctrl-C to the parent (which ends them), and
     one BLAS thread each."""
@@ -590,7 +496,7 @@ def _worker_init():
 
     signal.signal(signal.SIGINT, signal.SIG_IGN)
     global _BLAS
-    _BLAS = _single_blas()
+    _BLAS = single_thread(force=True)  # threadpoolctl applies the limit at once
 
 
 # ---------------------------------------------------------------------------
@@ -742,7 +648,7 @@ def _execute(chains: list, options, *, parts, workers, dask, warm, progress, lab
 
     aborted = True
     stack = contextlib.ExitStack()
-    stack.enter_context(_single_blas())
+    stack.enter_context(single_thread())
     try:
         for chain in chunks:
             advance(chain)
