@@ -73,24 +73,32 @@ def test_scalar_kalman_closed_form():
 
 
 def uncoded_spec(variances, noises, budget, vector=False):
-    """Memoryless sources, noiseless sensors, one budget over the links."""
+    """Memoryless sources, noiseless sensors, one budget over the links (one
+    vector link for all sources with ``vector``)."""
+    budgets = f"budgets: [{{name: b, links: all, total: {budget}}}]\n"
+    if not vector:
+        return parse_spec(spec_text(variances, noises) + "\n" + budgets)
     k = len(variances)
     lines = ["spec: 1", "world:", "  states:"]
     lines += [f"    x{i}: {{dim: 1, dynamics: 0, noise: {v}}}" for i, v in enumerate(variances)]
-    if vector:
-        obs = ", ".join(f"x{i}: {np.eye(k)[:, [i]].tolist()}" for i in range(k))
-        tracks = "[" + ", ".join(f"x{i}" for i in range(k)) + "]"
-        lines += ["sensors:", f"  s: {{observes: {{{obs}}}, noise: 0}}",
-                  "areas:", f"  a: {{tracks: {tracks}, lag: 1}}",
-                  "links:", f"  - {{from: s, to: a, kind: residual, noise: {list(noises)}}}",
-                  "budgets:", f"  - {{name: b, links: all, total: {budget}}}"]
-    else:
-        lines += ["sensors:"] + [f"  s{i}: {{observes: {{x{i}: 1}}, noise: 0}}" for i in range(k)]
-        lines += ["areas:"] + [f"  a{i}: {{tracks: x{i}, lag: 1}}" for i in range(k)]
-        lines += ["links:"] + [f"  - {{from: s{i}, to: a{i}, kind: residual, noise: {n}}}"
-                               for i, n in enumerate(noises)]
-        lines += ["budgets:", f"  - {{name: b, links: all, total: {budget}}}"]
-    return parse_spec("\n".join(lines) + "\n")
+    obs = ", ".join(f"x{i}: {np.eye(k)[:, [i]].tolist()}" for i in range(k))
+    tracks = "[" + ", ".join(f"x{i}" for i in range(k)) + "]"
+    lines += ["sensors:", f"  s: {{observes: {{{obs}}}, noise: 0}}",
+              "areas:", f"  a: {{tracks: {tracks}, lag: 1}}",
+              "links:", f"  - {{from: s, to: a, kind: residual, noise: {list(noises)}}}"]
+    return parse_spec("\n".join(lines) + "\n" + budgets)
+
+
+def spec_text(variances, noises):
+    """Memoryless sources, noiseless sensors, one area and one link per source
+    (no budgets), as YAML text."""
+    k = len(variances)
+    lines = ["spec: 1", "world:", "  states:"]
+    lines += [f"    x{i}: {{dim: 1, dynamics: 0, noise: {v}}}" for i, v in enumerate(variances)]
+    lines += ["sensors:"] + [f"  s{i}: {{observes: {{x{i}: 1}}, noise: 0}}" for i in range(k)]
+    lines += ["areas:"] + [f"  a{i}: {{tracks: x{i}, lag: 1}}" for i in range(k)]
+    lines += ["links:"] + [f"  - {{from: s{i}, to: a{i}, kind: residual, noise: {n}}}" for i, n in enumerate(noises)]
+    return "\n".join(lines)
 
 
 def kkt_allocation(variances, noises, budget):
@@ -287,3 +295,33 @@ def test_pinned_textbook_circuit_scored_beside_the_optimum():
     assert np.allclose(res.gains.links["s->a"]["S"], 1) and np.allclose(res.gains.links["s->a"]["P"], 1)
     assert res.reference is not None
     assert res.reference.objective <= res.objective * (1 + 1e-9)
+
+
+def test_overlapping_budgets_match_a_convex_program():
+    # No closed form once budgets overlap, but for independent memoryless
+    # sources over uncoded links the problem is convex in the powers:
+    # min sum_i s_i N_i / (N_i + P_i) s.t. group sums of P within totals
+    # (Boyd & Vandenberghe, Convex Optimization, 2004: a water-filling-type
+    # program). CVXPY's global optimum and its dual values are the reference
+    # for the designer's objective, powers and shadow prices.
+    cp = pytest.importorskip("cvxpy")
+    variances, noises = [3.0, 1.0, 0.6, 0.2], [0.5, 1.0, 0.3, 0.4]
+    groups = {"left": ([0, 1, 2], 2.5), "right": ([1, 2, 3], 1.5)}
+    text = spec_text(variances, noises) + "\nbudgets:\n" + "".join(
+        f"  - {{name: {name}, links: [{', '.join(f's{i}->a{i}' for i in idx)}], total: {total}}}\n"
+        for name, (idx, total) in groups.items())
+    res = design_budgets(parse_spec(text), FAST)
+
+    P = cp.Variable(len(variances), nonneg=True)
+    error = sum(s * n * cp.inv_pos(n + P[i]) for i, (s, n) in enumerate(zip(variances, noises)))
+    limits = {name: cp.sum(P[idx]) <= total for name, (idx, total) in groups.items()}
+    cp.Problem(cp.Minimize(error), list(limits.values())).solve()
+
+    assert res.status == "converged", res.message
+    assert res.objective == pytest.approx(error.value, rel=1e-5)
+    powers = np.array([res.scores.links[f"s{i}->a{i}"].power for i in range(len(variances))])
+    np.testing.assert_allclose(powers, P.value, atol=2e-3)
+    for name, constraint in limits.items():
+        assert res.budgets[name].shadow_price == pytest.approx(float(constraint.dual_value), rel=1e-2, abs=1e-4)
+        assert res.budgets[name].met
+
