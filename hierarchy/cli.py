@@ -149,7 +149,7 @@ def cmd_render(args) -> int:
 
     from .render import read_result, save_circuit
 
-    out = args.output or os.path.splitext(args.result)[0] + ".png"
+    out = _render_output(args)
     data = read_result(args.result)
     spec = _load(args.spec).spec if args.spec else None
     save_circuit(data, out, spec=spec, width_by=args.width_by)
@@ -376,10 +376,18 @@ def build_parser() -> argparse.ArgumentParser:
     return p
 
 
+def _render_output(args) -> str:
+    """Where `render` draws: ``--output``, else the result's name with ``.png``."""
+    import os
+
+    return args.output or os.path.splitext(args.result)[0] + ".png"
+
+
 def _planned_outputs(args) -> list:
     """The files this command was asked to write (inputs excluded)."""
-    names = ["json", "plot", "output"] + (["gains"] if args.command == "design" else [])
+    names = ["json", "plot"] + (["gains"] if args.command == "design" else [])
     out = [getattr(args, n, None) for n in names]
+    out.append(_render_output(args) if args.command == "render" else getattr(args, "output", None))
     base = getattr(args, "out", None)
     if base:
         out += [f"{base}.csv", f"{base}.json"]
@@ -427,15 +435,17 @@ def _show_warning(message, category, filename, lineno, file=None, line=None):
 
 def main(argv=None) -> int:
     """Entry point of the ``hierarchy`` command."""
+    import os
     import warnings
 
     from . import io
+    from .blas import single_thread
 
     args = build_parser().parse_args(argv)
     bookmark = io.mark()
     try:
         _check_outputs(args)
-        with warnings.catch_warnings():
+        with warnings.catch_warnings(), single_thread():
             warnings.showwarning = _show_warning
             return args.run(args)
     except HierarchyError as err:
@@ -444,3 +454,8 @@ def main(argv=None) -> int:
     except KeyboardInterrupt:
         print(_interrupted(args, io.written_since(bookmark)), file=sys.stderr)
         return 130
+    except BrokenPipeError:
+        # The reader went away (`hierarchy ... | head`): not an error of ours.
+        # Point stdout at devnull so the exit flush does not fail again.
+        os.dup2(os.open(os.devnull, os.O_WRONLY), sys.stdout.fileno())
+        return 0

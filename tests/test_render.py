@@ -210,3 +210,25 @@ def test_check_does_not_import_matplotlib():
             "assert 'matplotlib' not in sys.modules, 'matplotlib imported'")
     out = subprocess.run([sys.executable, "-c", code], capture_output=True, text=True, cwd=ROOT, timeout=60)
     assert out.returncode == 0, out.stderr
+
+
+def test_render_default_output_never_overwrites_its_input(tmp_path):
+    # A result saved under a .png name: the default output (same stem, .png)
+    # is the input itself, and must be refused before anything is written.
+    result = tmp_path / "r.png"
+    result.write_text(json.dumps(fake_result("single-loop")))
+    before = result.read_bytes()
+    out = run("render", result)
+    assert out.returncode == 2 and "Traceback" not in out.stderr
+    assert "this output would overwrite the input" in out.stderr
+    assert result.read_bytes() == before
+
+
+def test_a_closed_pipe_is_not_an_error():
+    # `hierarchy ... | head`: the reader leaves early; exit quietly with 0.
+    code = ("import sys, hierarchy.cli as cli\n"
+            "def gone(args): raise BrokenPipeError(32, 'Broken pipe')\n"
+            "cli.cmd_check = gone\n"
+            "sys.exit(cli.main(['check', 'specs/two-level.yaml']))\n")
+    out = subprocess.run([sys.executable, "-c", code], capture_output=True, text=True, cwd=ROOT, timeout=60)
+    assert out.returncode == 0 and out.stderr == "", out.stderr
