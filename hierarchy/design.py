@@ -46,6 +46,10 @@ SETTLED = 1e-4
 #: A budget left partly unspent counts as slack when its multiplier times
 #: the unspent power is at most this fraction of the objective.
 SLACK_GAP = 1e-6
+#: Sizes of the trial signal that tests whether a silent link should wake.
+WAKE_DELTAS = (1e-2, 1e-1)
+#: Screen fully silent links together once there are more than this many.
+SCREEN_MIN = 4
 
 
 @dataclass
@@ -273,12 +277,21 @@ def _wake_silent(prob: Problem, best):
     A zero signal is a saddle of the bilinear products (K*S, P*G): the
     gradient there says nothing. So give the sender a small signal along an
     unused direction, let the gradient choose the receiver, and keep the
-    point if the objective falls (the sign of the curvature at zero)."""
+    point if the objective falls (the sign of the curvature at zero).
+
+    Testing every silent link on its own costs a few evaluations per link
+    and trial, minutes per pass at 64 areas. But with every link silent in
+    full (sender and receiver at zero, so its receiver sees pure channel
+    noise, independent of all else) the second derivatives of the objective
+    do not couple one such link with another. So all of them are screened
+    together (two evaluations per trial direction, :func:`_screen`), and only
+    the links whose own quadratic model may fall get the exact test."""
     theta0, f0 = best.x, best.f
     covs = link_covariances(prob.layout, prob.unpack(theta0))
     if covs is None:
         return None
     rng = np.random.default_rng(12345)
+    tests = []  # (sender slice, receiver slices, directions by trial, screened together)
     for cov, link in zip(covs, prob.spec.links):
         block = prob.sender_block(link.id)
         if block is None:
@@ -288,17 +301,83 @@ def _wake_silent(prob: Problem, best):
         dead = V[:, w <= _silence_floor(prob, link)]
         if dead.shape[1] == 0:
             continue
-        rsl = _receivers(prob, link)
+        dirs = []
         for trial in range(3):
             v = dead @ (rng.standard_normal(dead.shape[1]) if trial else np.ones(dead.shape[1]))
             r = rng.standard_normal(shape[1]) if trial else np.ones(shape[1])
-            for delta in (1e-2, 1e-1):
+            dirs.append(np.outer(v / np.linalg.norm(v), r / np.linalg.norm(r)).ravel())
+        rsl = _receivers(prob, link)
+        if rsl:
+            # (A noiseless link's receiver curvature comes from the trial
+            # signals themselves, which do couple links: tested alone.)
+            tests.append((sl, rsl, dirs, dead.shape[1] == link.dim and np.trace(link.noise) > 0))
+    full = [k for k, t in enumerate(tests) if t[3]]
+    hopeful = None
+    if len(full) > SCREEN_MIN:
+        hopeful = _screen(prob, theta0, [tests[k] for k in full])
+        if hopeful is not None:
+            hopeful = {(full[k], trial, delta) for k, trial, delta in hopeful}
+    for k, (sl, rsl, dirs, in_full) in enumerate(tests):
+        for trial, direction in enumerate(dirs):
+            for delta in WAKE_DELTAS:
+                if in_full and hopeful is not None and (k, trial, delta) not in hopeful:
+                    continue
                 theta = theta0.copy()
-                theta[sl] += delta * np.outer(v / np.linalg.norm(v), r / np.linalg.norm(r)).ravel()
+                theta[sl] += delta * direction
                 woken = _best_receiver_step(prob, theta, rsl, f0)
                 if woken is not None:
                     return woken
     return None
+
+
+def _screen(prob: Problem, theta0, tests):
+    """``(test, trial, delta)`` of the fully silent links whose quadratic
+    model along the trial direction may fall; ``None`` if it cannot tell.
+
+    For each trial direction ``E_l`` of every link at once: the gradient at
+    ``theta0 + delta E`` gives each link's sender curvature ``a_l`` (the
+    power's price and error cost) and its receiver gradient ``g_l``; a
+    second gradient, with every receiver stepped along ``-g_l``, gives each
+    receiver curvature ``c_l``. A link is hopeful when the best receiver step
+    could win back half of what the signal costs: ``|g_l|^2 / c_l >= a_l
+    delta^2 / 2`` (the exact test then decides)."""
+    f0, g0 = prob.value_and_grad(theta0)
+    if g0 is None:
+        return None
+    out = set()
+    for trial in range(len(tests[0][2])):
+        for delta in WAKE_DELTAS:
+            E = np.zeros_like(theta0)
+            for sl, rsl, dirs, _ in tests:
+                E[sl] = dirs[trial]
+            _, gp = prob.value_and_grad(theta0 + delta * E)
+            if gp is None:
+                return None
+            D, grads = np.zeros_like(theta0), []
+            for sl, rsl, dirs, _ in tests:
+                g = np.concatenate([gp[r] - g0[r] for r in rsl])
+                grads.append(g)
+                n = np.linalg.norm(g)
+                if n > 0:
+                    off = 0
+                    for r in rsl:
+                        size = r.stop - r.start
+                        D[r] = -g[off:off + size] / n
+                        off += size
+            step = 1e-3
+            _, gq = prob.value_and_grad(theta0 + delta * E + step * D)
+            if gq is None:
+                return None
+            for k, ((sl, rsl, dirs, _), g) in enumerate(zip(tests, grads)):
+                n = np.linalg.norm(g)
+                if n == 0:
+                    continue
+                d = np.concatenate([D[r] for r in rsl])
+                c = float(np.concatenate([gq[r] - gp[r] for r in rsl]) @ d) / step
+                a = float((gp[sl] - g0[sl]) @ dirs[trial]) / delta
+                if c <= 0 or a <= 0 or n * n / c >= 0.5 * a * delta * delta:
+                    out.add((k, trial, delta))
+    return out
 
 
 def _best_receiver_step(prob: Problem, theta, receiver_slices, f0):

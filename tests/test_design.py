@@ -89,15 +89,17 @@ def uncoded_spec(variances, noises, budget, vector=False):
     return parse_spec("\n".join(lines) + "\n" + budgets)
 
 
-def spec_text(variances, noises):
+def spec_text(variances, noises, prices=None):
     """Memoryless sources, noiseless sensors, one area and one link per source
-    (no budgets), as YAML text."""
+    (priced if ``prices`` are given; no budgets), as YAML text."""
     k = len(variances)
     lines = ["spec: 1", "world:", "  states:"]
     lines += [f"    x{i}: {{dim: 1, dynamics: 0, noise: {v}}}" for i, v in enumerate(variances)]
     lines += ["sensors:"] + [f"  s{i}: {{observes: {{x{i}: 1}}, noise: 0}}" for i in range(k)]
     lines += ["areas:"] + [f"  a{i}: {{tracks: x{i}, lag: 1}}" for i in range(k)]
-    lines += ["links:"] + [f"  - {{from: s{i}, to: a{i}, kind: residual, noise: {n}}}" for i, n in enumerate(noises)]
+    cost = [f", price: {p}" for p in prices] if prices is not None else [""] * k
+    lines += ["links:"] + [f"  - {{from: s{i}, to: a{i}, kind: residual, noise: {n}{c}}}"
+                           for i, (n, c) in enumerate(zip(noises, cost))]
     return "\n".join(lines)
 
 
@@ -325,3 +327,38 @@ def test_overlapping_budgets_match_a_convex_program():
         assert res.budgets[name].shadow_price == pytest.approx(float(constraint.dual_value), rel=1e-2, abs=1e-4)
         assert res.budgets[name].met
 
+
+
+def test_screened_wake_up_finds_what_link_by_link_tests_find(monkeypatch):
+    # Six fully silent noisy links are screened together for a wake-up (their
+    # second derivatives do not couple); the screen must not hide the one link
+    # that should wake once its price drops below s2/N (uncoded transmission:
+    # P = sqrt(s2 N / price) - N > 0), and must pick the same point as testing
+    # every link alone.
+    import hierarchy.design as D
+
+    variances, noises = [1.0] * 6, [0.5] * 6
+    priced = lambda prices: parse_spec(spec_text(variances, noises, prices))
+    dear = design_prices(priced([3.0] * 6), FAST)
+    assert len(dear.silent) == 6
+    seen = []
+    real = D._wake_silent
+
+    def both(prob, best):
+        screened = real(prob, best)
+        monkeypatch.setattr(D, "SCREEN_MIN", 10 ** 9)
+        alone = real(prob, best)
+        monkeypatch.setattr(D, "SCREEN_MIN", 4)
+        seen.append((screened, alone))
+        return screened
+
+    monkeypatch.setattr(D, "_wake_silent", both)
+    cheap = [3.0, 3.0, 3.0, 0.1, 3.0, 3.0]
+    res = design_prices(priced(cheap), Options(restarts=1, max_iter=2000, probe_iter=0), start=dear.gains)
+    assert seen and seen[0][1] is not None  # the link-by-link test wakes a link...
+    for screened, alone in seen:  # ...and the screen agrees every time
+        assert (screened is None) == (alone is None)
+        assert screened is None or np.array_equal(screened, alone)
+    assert res.status == "converged" and set(res.silent) == {f"s{i}->a{i}" for i in (0, 1, 2, 4, 5)}
+    P = np.sqrt(1.0 * 0.5 / 0.1) - 0.5
+    assert res.scores.links["s3->a3"].power == pytest.approx(P, rel=1e-4)
