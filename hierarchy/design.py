@@ -48,6 +48,8 @@ SETTLED = 1e-4
 SLACK_GAP = 1e-6
 #: Sizes of the trial signal that tests whether a silent link should wake.
 WAKE_DELTAS = (1e-2, 1e-1)
+#: SNR above which a link's sender/receiver balance is walked directly.
+BALANCE_SNR = 1e3
 #: Screen fully silent links together once there are more than this many.
 SCREEN_MIN = 4
 
@@ -185,7 +187,7 @@ def _polish(prob: Problem, x0, opts: Options, max_iter: int, wake: bool = True, 
     wake silent links or modes (unless ``wake`` is false). With ``settled``,
     also stop after a round that lowers the objective by at most that much
     (relative). Returns the best outcome and the iterations."""
-    best, x, iterations, wakes = None, x0, 0, 0
+    best, x, iterations, wakes, balances = None, x0, 0, 0, 0
     last = prob.value_and_grad(x0)[0] if settled else None
     converged_f = np.inf  # objective at the last converged round
     while iterations < max_iter:
@@ -204,6 +206,9 @@ def _polish(prob: Problem, x0, opts: Options, max_iter: int, wake: bool = True, 
             break
         last = best.f
         moved = _switch_off_fading(prob, best)
+        if moved is None and best.status != ITERATION_LIMIT and balances < 20:
+            moved = _balance_links(prob, best)
+            balances += 1
         if wake and moved is None and best.status == CONVERGED and wakes < 8:
             moved = _wake_silent(prob, best)
             wakes += 1
@@ -216,6 +221,44 @@ def _polish(prob: Problem, x0, opts: Options, max_iter: int, wake: bool = True, 
             converged_f = best.f
         x = best.x if moved is None else moved
     return best, iterations
+
+
+def _balance_links(prob: Problem, best):
+    """Rebalance links sent far above their noise.
+
+    Scaling a link's sender gains by ``c`` and the gains that use its signal
+    by ``1/c`` keeps every signal path and changes only the channel noise
+    let through against the power paid. At high SNR this direction is a long
+    flat valley beside a very steep one, where quasi-Newton steps stall and
+    the objective's rounding hides the slope. So walk it directly: a parabola
+    in ``log c`` through three evaluations per link, kept if it lowers the
+    objective."""
+    powers = _link_powers(prob, best.x)
+    theta, f = best.x.copy(), best.f
+    moved = False
+    for link in prob.spec.links:
+        noise = float(np.trace(link.noise))
+        sender, receivers = prob.sender_slices(link.id), _receivers(prob, link)
+        if noise <= 0 or powers[link.id] < BALANCE_SNR * noise or not sender or not receivers:
+            continue
+
+        def at(t):
+            trial = theta.copy()
+            for sl in sender:
+                trial[sl] *= np.exp(t)
+            for sl in receivers:
+                trial[sl] *= np.exp(-t)
+            return prob.value_and_grad(trial)[0], trial
+
+        h = 0.05
+        (fp, _), (fm, _) = at(h), at(-h)
+        curvature = (fp - 2 * f + fm) / (2 * h * h)
+        if not (np.isfinite(fp) and np.isfinite(fm)) or curvature <= 0:
+            continue
+        ft, trial = at(float(np.clip(-(fp - fm) / (4 * h * curvature), -2.0, 2.0)))
+        if np.isfinite(ft) and ft < f - 1e-12 * max(abs(f), F_FLOOR):
+            theta, f, moved = trial, ft, True
+    return theta if moved else None
 
 
 def _switch_off_fading(prob: Problem, best):
