@@ -1,10 +1,9 @@
 """Hardening (issue 6): numerical edge cases, honest results, nothing lost,
 safe by construction, and the error catalogue kept true.
 
-Closed forms are named beside each check. Bugs found in modules owned
-elsewhere are pinned by ``xfail(strict=True)`` tests at the end: they fail
-today and will turn into an unexpected pass (a failure) once fixed, so the
-marker is removed with the fix.
+Closed forms are named beside each check. Bugs found here were first
+pinned by strict-xfail tests; the regression tests at the end are what is
+left of them once fixed.
 """
 
 from __future__ import annotations
@@ -726,7 +725,7 @@ def test_catalogue_templates_follow_helpers_and_conditionals():
 
 
 # ---------------------------------------------------------------------------
-# Bugs found in modules owned elsewhere (strict xfail: they fail today)
+# Regression tests of bugs found by these checks and by the fuzzer
 
 
 # Was a bug (convergence was judged against max(1, |f|), i.e. absolutely when

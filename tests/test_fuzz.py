@@ -33,7 +33,6 @@ import shutil
 import signal
 import tempfile
 import time
-import traceback
 from collections import Counter
 from pathlib import Path
 
@@ -55,15 +54,6 @@ from hierarchy.spec import parse_spec
 COUNTS: Counter = Counter()
 BY_TEST: Counter = Counter()
 OUTCOMES: Counter = Counter()
-
-#: Known bugs in modules owned elsewhere, reported and tracked by strict
-#: xfail tests in test_edge_cases.py; the fuzz counts them instead of failing.
-KNOWN_BUGS: Counter = Counter()
-#: Crashes of known bugs: (test on the exception and its traceback, bug).
-#: Empty now: the pinned-receiver bug below (and its LinAlgError crash in
-#: design._meet_budgets) was fixed; add an entry when a bug is reported.
-KNOWN_CRASHES: list = []
-KNOWN = "known bug"
 
 #: Wall-clock bound of one case, in seconds (a hang fails the test).
 LIMIT = {"check": 10, "evaluate": 10, "design": 60}
@@ -102,15 +92,6 @@ def cli(argv, test: str) -> tuple:
         pytest.fail(f"`hierarchy {' '.join(map(str, argv))}` ran longer than "
                     f"{LIMIT[command]} s (a hang)\nstdout:\n{out.getvalue()}\n"
                     f"stderr:\n{err.getvalue()}")
-    except Exception as exc:
-        trace = traceback.format_exc()
-        for matches, bug in KNOWN_CRASHES:
-            if matches(exc, trace):
-                KNOWN_BUGS[bug] += 1
-                status = KNOWN
-                break
-        else:
-            raise
     finally:
         signal.setitimer(signal.ITIMER_REAL, 0)
         signal.signal(signal.SIGALRM, old)
@@ -123,8 +104,6 @@ def cli(argv, test: str) -> tuple:
 def assert_clean(result, allowed=(0, 2)) -> int:
     """The outcome contract; returns the exit status."""
     status, out, err, _ = result
-    if status == KNOWN:
-        return status
     assert "Traceback" not in out + err, err
     assert status in allowed, f"exit status {status}\nstdout:\n{out}\nstderr:\n{err}"
     errors = [line for line in err.splitlines() if line.startswith("error:")]
@@ -714,8 +693,7 @@ def _evaluate(case):
     target = WORK / "eval.out.json"
     target.unlink(missing_ok=True)
     status, out, err, _ = result = cli(["evaluate", spec, "--gains", gains, "--json", target], "evaluate")
-    if assert_clean(result) == KNOWN:
-        return
+    assert_clean(result)
     if status == 0:
         assert_json_clean(target)
     else:
@@ -752,8 +730,7 @@ def _design(case):
     if not reference:
         argv.append("--no-reference")
     status, out, err, _ = outcome = cli(argv, "design")
-    if assert_clean(outcome, allowed=(0, 1, 2)) == KNOWN:
-        return
+    assert_clean(outcome, allowed=(0, 1, 2))
     if status == 2:
         valid = parses(text) is not None
         # A spec that reads may still be refused by design only for its pins.
@@ -829,5 +806,3 @@ def _report(request):
         reporter.write_line("")
         reporter.write_line(f"fuzz: {sum(COUNTS.values())} cases ({parts})")
         reporter.write_line(f"fuzz outcomes (command:exit=count): {statuses}")
-        for bug, n in KNOWN_BUGS.items():
-            reporter.write_line(f"fuzz: known bug hit {n} time(s): {bug}")
