@@ -119,3 +119,23 @@ def test_existing_output_survives_a_failed_run(tmp_path):
 def test_main_returns_status_in_process(capsys):
     assert main(["check", str(ROOT / "specs/single-loop.yaml")]) == 0
     assert "valid" in capsys.readouterr().out
+
+
+@pytest.mark.parametrize("env,expected", [({}, {1}), ({"OPENBLAS_NUM_THREADS": "2"}, {2})])
+def test_numeric_commands_run_blas_on_one_thread_unless_told(env, expected):
+    # What the design sees: every BLAS pool on one thread by default, the
+    # user's own count when they set one (threadpoolctl reads the pools).
+    pytest.importorskip("threadpoolctl")
+    code = ("import json, sys, hierarchy.cli as cli\n"
+            "from threadpoolctl import threadpool_info\n"
+            "def seen(args):\n"
+            "    print(json.dumps(sorted({p['num_threads'] for p in threadpool_info() if p['user_api'] == 'blas'})))\n"
+            "    return 0\n"
+            "cli.cmd_design = seen\n"
+            "sys.exit(cli.main(['design', 'specs/single-loop.yaml']))\n")
+    clean = {k: v for k, v in os.environ.items() if k not in ("OPENBLAS_NUM_THREADS", "OMP_NUM_THREADS",
+                                                              "MKL_NUM_THREADS", "BLIS_NUM_THREADS")}
+    out = subprocess.run([sys.executable, "-c", code], capture_output=True, text=True, cwd=ROOT, timeout=60,
+                         env={**clean, **env})
+    assert out.returncode == 0, out.stderr
+    assert set(json.loads(out.stdout)) == expected
