@@ -183,17 +183,21 @@ def _solve_prices(prob: Problem, opts: Options, starts=None, polish_iter=None, w
 
 def _polish(prob: Problem, x0, opts: Options, max_iter: int, wake: bool = True, settled: float = 0.0):
     """Minimise from ``x0`` in rounds of at most ``CHUNK`` iterations. Between
-    rounds, switch off links that are fading away; once converged, try to
-    wake silent links or modes (unless ``wake`` is false). With ``settled``,
+    rounds, switch off links that are fading away, rebalance high-SNR links
+    once a round ended on its own, and try to wake silent links or modes
+    after any round that did not fail (unless ``wake`` is false). With ``settled``,
     also stop after a round that lowers the objective by at most that much
-    (relative). Returns the best outcome and the iterations."""
+    (relative). The quasi-Newton curvature is carried from round to round.
+    Returns the best outcome and the iterations."""
     best, x, iterations, wakes, balances = None, x0, 0, 0, 0
     last = prob.value_and_grad(x0)[0] if settled else None
     converged_f = np.inf  # objective at the last converged round
+    curvature = None
     while iterations < max_iter:
         out = minimise(prob.value_and_grad, x, max_iter=min(CHUNK, max_iter - iterations),
-                       gtol=opts.gtol, ftol=opts.ftol, unit=prob.units(x))
+                       gtol=opts.gtol, ftol=opts.ftol, unit=prob.units(x), curvature=curvature)
         iterations += out.iterations
+        curvature = out.curvature
         # (Switching a link off may cost rounding, which the test allows.)
         if best is not None and not out.f <= best.f + 1e-12 * max(abs(best.f), F_FLOOR):
             break
@@ -209,7 +213,9 @@ def _polish(prob: Problem, x0, opts: Options, max_iter: int, wake: bool = True, 
         if moved is None and best.status != ITERATION_LIMIT and balances < 20:
             moved = _balance_links(prob, best)
             balances += 1
-        if wake and moved is None and best.status == CONVERGED and wakes < 8:
+        # Wake tests also after a round cut by the iteration limit: a link can
+        # sit silent (a saddle) while the rest of the design still creeps.
+        if wake and moved is None and best.status != FAILED and wakes < 8:
             moved = _wake_silent(prob, best)
             wakes += 1
         if best.status == CONVERGED:
@@ -219,6 +225,10 @@ def _polish(prob: Problem, x0, opts: Options, max_iter: int, wake: bool = True, 
             if moved is None or best.f > converged_f + 1e-12 * max(abs(best.f), F_FLOOR):
                 break
             converged_f = best.f
+        if moved is not None and curvature is not None:
+            # Gains set from outside (switched off, woken, rebalanced): their
+            # old curvature would pull them straight back.
+            curvature[0].forget(np.flatnonzero(moved != best.x))
         x = best.x if moved is None else moved
     return best, iterations
 
@@ -287,12 +297,16 @@ def _switch_off_fading(prob: Problem, best):
 
 
 def _receivers(prob: Problem, link) -> list:
-    """Slices of the gains that make use of a link's signal: its ``K``, or for
-    a prediction into a sensor (which has no state) the ``P`` of the
-    residual that subtracts it."""
-    if link.kind == "prediction" and prob.spec.is_sensor(link.target):
-        return prob.slices(f"{link.target}->{link.source}", "P")
-    return prob.receiver_slices(link.id)
+    """Slices of the gains that make use of a link's signal: its ``K`` (none
+    for a prediction into a sensor, which has no state) and, for a
+    prediction, the ``P`` of the residual that subtracts it. Switching a
+    link off must zero all of them: a ``P`` left alone keeps feeding the
+    prediction's channel noise onwards, its gradient regrows the sender, and
+    the link flips on and off from round to round."""
+    slices = prob.receiver_slices(link.id)
+    if link.kind == "prediction":
+        slices = slices + prob.slices(f"{link.target}->{link.source}", "P")
+    return slices
 
 
 def _link_powers(prob: Problem, theta) -> dict:

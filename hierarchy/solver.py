@@ -51,9 +51,13 @@ class Outcome:
     iterations: int
     status: str
     message: str
+    #: The curvature model at the end and the units it is in: pass it to the
+    #: next :func:`minimise` from this point to carry on where this one stopped.
+    curvature: tuple | None = None
 
 
-def minimise(fun, x0, *, max_iter=500, gtol=1e-8, ftol=1e-12, memory=12, unit=None, callback=None) -> Outcome:
+def minimise(fun, x0, *, max_iter=500, gtol=1e-8, ftol=1e-12, memory=12, unit=None, curvature=None,
+             callback=None) -> Outcome:
     """Minimise ``fun(x) -> (f, grad)`` from ``x0``; ``f = inf`` marks a
     forbidden point (unstable loop), which the line search steps back from.
 
@@ -91,12 +95,18 @@ def minimise(fun, x0, *, max_iter=500, gtol=1e-8, ftol=1e-12, memory=12, unit=No
 
     x, g = x0 / unit, g * unit
     curv = _Dense() if x.size <= DENSE_LIMIT else _Limited(memory)
+    if curvature is not None and type(curvature[0]) is type(curv) and len(curvature[1]) == x.size:
+        # Carry on with an earlier run's curvature, brought into these units
+        # (cutting a long run into rounds must not make it start afresh).
+        curv = curvature[0]
+        curv.rescale(curvature[1] / unit)
     small_steps = 0
     for it in range(1, max_iter + 1):
         gnorm = float(np.max(np.abs(g)))
         grel = _relative(f, g)
         if grel <= gtol:
-            return Outcome(x * unit, f, grel, it - 1, CONVERGED, f"relative gradient {grel:.2e} below tolerance")
+            return Outcome(x * unit, f, grel, it - 1, CONVERGED, f"relative gradient {grel:.2e} below tolerance",
+                           (curv, unit))
         d = curv.direction(g)
         slope = float(g @ d)
         # Decrease the quasi-Newton model still promises (half the squared
@@ -126,7 +136,7 @@ def minimise(fun, x0, *, max_iter=500, gtol=1e-8, ftol=1e-12, memory=12, unit=No
                 return Outcome(x * unit, f, grel, it, CONVERGED if done else FAILED,
                                "line search cannot make progress" + (
                                    f" (a Newton step would lower the objective by {model_gain / scale:.1e} of it)"
-                                   if done and grel > STALL_GTOL else ""))
+                                   if done and grel > STALL_GTOL else ""), (curv, unit))
         curv.update(x_new - x, g_new - g)
         small_steps = small_steps + 1 if f - f_new <= ftol * max(abs(f), F_FLOOR) else 0
         x, f, g = x_new, f_new, g_new
@@ -135,12 +145,12 @@ def minimise(fun, x0, *, max_iter=500, gtol=1e-8, ftol=1e-12, memory=12, unit=No
         if small_steps >= 3:
             grel = _relative(f, g)
             if grel <= STALL_GTOL:
-                return Outcome(x * unit, f, grel, it, CONVERGED, "objective stopped falling")
+                return Outcome(x * unit, f, grel, it, CONVERGED, "objective stopped falling", (curv, unit))
             # A stall on a slope: the curvature model is stale; start it afresh.
             curv.reset()
             small_steps = 0
     return Outcome(x * unit, f, _relative(f, g), max_iter, ITERATION_LIMIT,
-                   f"stopped after {max_iter} iterations")
+                   f"stopped after {max_iter} iterations", (curv, unit))
 
 
 def newton_gain(fun, x, g, h=1e-6) -> float:
@@ -204,6 +214,21 @@ class _Dense:
     def direction(self, g):
         return -g if self.H is None else -_symv(self.H, g)
 
+    def rescale(self, r):
+        """Variables multiplied by ``r`` (z_new = r z_old)."""
+        if self.H is not None:
+            self.H *= np.outer(r, r)
+
+    def forget(self, J):
+        """Drop what is known about variables ``J`` (set from outside): no
+        coupling to the others, a typical diagonal."""
+        if self.H is not None and len(J):
+            keep = np.setdiff1d(np.arange(len(self.H)), J)
+            typical = float(np.mean(np.diag(self.H)[keep])) if len(keep) else 1.0
+            self.H[J, :] = 0.0
+            self.H[:, J] = 0.0
+            self.H[J, J] = typical
+
     def update(self, s, y):
         if not _curvature_ok(s, y):
             return
@@ -241,6 +266,19 @@ class _Limited:
     @property
     def ready(self):
         return bool(self.S)
+
+    def rescale(self, r):
+        """Variables multiplied by ``r`` (z_new = r z_old)."""
+        self.S = [s * r for s in self.S]
+        self.Y = [y / r for y in self.Y]
+
+    def forget(self, J):
+        """Drop what is known about variables ``J`` (set from outside)."""
+        for s, y in zip(self.S, self.Y):
+            s[J] = 0.0
+            y[J] = 0.0
+        pairs = [(s, y) for s, y in zip(self.S, self.Y) if _curvature_ok(s, y)]
+        self.S, self.Y = [s for s, _ in pairs], [y for _, y in pairs]
 
     def update(self, s, y):
         if not _curvature_ok(s, y):
