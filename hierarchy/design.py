@@ -398,10 +398,10 @@ def _screen(prob: Problem, theta0, tests):
     receiver curvature ``c_l``. A link is hopeful when the best receiver step
     could win back half of what the signal costs: ``|g_l|^2 / c_l >= a_l
     delta^2 / 2`` (the exact test then decides)."""
-    f0, g0 = prob.value_and_grad(theta0)
+    _, g0 = prob.value_and_grad(theta0)
     if g0 is None:
         return None
-    out = set()
+    out, step = set(), 1e-3
     for trial in range(len(tests[0][2])):
         for delta in WAKE_DELTAS:
             E = np.zeros_like(theta0)
@@ -410,27 +410,18 @@ def _screen(prob: Problem, theta0, tests):
             _, gp = prob.value_and_grad(theta0 + delta * E)
             if gp is None:
                 return None
-            D, grads = np.zeros_like(theta0), []
-            for sl, rsl, dirs, _ in tests:
-                g = np.concatenate([gp[r] - g0[r] for r in rsl])
-                grads.append(g)
-                n = np.linalg.norm(g)
-                if n > 0:
-                    off = 0
-                    for r in rsl:
-                        size = r.stop - r.start
-                        D[r] = -g[off:off + size] / n
-                        off += size
-            step = 1e-3
+            norms = [np.sqrt(sum(float(np.sum((gp[r] - g0[r]) ** 2)) for r in rsl)) for _, rsl, _, _ in tests]
+            D = np.zeros_like(theta0)
+            for (_, rsl, _, _), n in zip(tests, norms):
+                for r in rsl:
+                    D[r] = -(gp[r] - g0[r]) / n if n > 0 else 0.0
             _, gq = prob.value_and_grad(theta0 + delta * E + step * D)
             if gq is None:
                 return None
-            for k, ((sl, rsl, dirs, _), g) in enumerate(zip(tests, grads)):
-                n = np.linalg.norm(g)
+            for k, ((sl, rsl, dirs, _), n) in enumerate(zip(tests, norms)):
                 if n == 0:
                     continue
-                d = np.concatenate([D[r] for r in rsl])
-                c = float(np.concatenate([gq[r] - gp[r] for r in rsl]) @ d) / step
+                c = sum(float((gq[r] - gp[r]) @ D[r]) for r in rsl) / step
                 a = float((gp[sl] - g0[sl]) @ dirs[trial]) / delta
                 if c <= 0 or a <= 0 or n * n / c >= 0.5 * a * delta * delta:
                     out.add((k, trial, delta))
