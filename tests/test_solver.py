@@ -75,13 +75,18 @@ def test_dense_update_is_the_textbook_bfgs_update():
     np.testing.assert_allclose(dense.direction(g), -H @ g, rtol=1e-12, atol=1e-12)
 
 
+def trained(curv, seed, n=4, pairs=4, noise=0.1):
+    """``curv`` after ``pairs`` random curvature pairs in ``n`` variables."""
+    rng = np.random.default_rng(seed)
+    for _ in range(pairs):
+        s = rng.standard_normal(n)
+        curv.update(s, s + noise * rng.standard_normal(n))
+    return curv
+
+
 def test_rescaled_dense_curvature_is_the_same_model_in_new_units():
-    rng = np.random.default_rng(1)
-    curv = _Dense()
-    for _ in range(4):
-        s = rng.standard_normal(4)
-        curv.update(s, s + 0.1 * rng.standard_normal(4))
-    g = rng.standard_normal(4)
+    curv = trained(_Dense(), seed=1)
+    g = np.random.default_rng(5).standard_normal(4)
     r = np.array([2.0, 0.5, 10.0, 1.0])  # z_new = r z_old, so g_new = g_old / r
     before = curv.direction(g)
     curv.rescale(r)
@@ -92,11 +97,7 @@ def test_rescaled_limited_memory_keeps_the_secant_equation():
     # L-BFGS's starting matrix is a multiple of I in whatever units it runs
     # in, so only the stored pairs carry over: in the new units the model
     # still maps the last gradient change onto the last step (H y = s).
-    rng = np.random.default_rng(1)
-    curv = _Limited(5)
-    for _ in range(4):
-        s = rng.standard_normal(4)
-        curv.update(s, s + 0.1 * rng.standard_normal(4))
+    curv = trained(_Limited(5), seed=1)
     r = np.array([2.0, 0.5, 10.0, 1.0])
     s_new, y_new = curv.S[-1] * r, curv.Y[-1] / r
     curv.rescale(r)
@@ -104,11 +105,7 @@ def test_rescaled_limited_memory_keeps_the_secant_equation():
 
 
 def test_forgotten_variables_are_uncoupled():
-    rng = np.random.default_rng(2)
-    curv = _Dense()
-    for _ in range(6):
-        s = rng.standard_normal(5)
-        curv.update(s, s + 0.3 * rng.standard_normal(5))
+    curv = trained(_Dense(), seed=2, n=5, pairs=6, noise=0.3)
     curv.forget(np.array([1, 3]))
     g = np.zeros(5)
     g[1] = 1.0
