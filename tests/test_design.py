@@ -328,7 +328,6 @@ def test_overlapping_budgets_match_a_convex_program():
         assert res.budgets[name].met
 
 
-
 def test_screened_wake_up_finds_what_link_by_link_tests_find(monkeypatch):
     # Six fully silent noisy links are screened together for a wake-up (their
     # second derivatives do not couple); the screen must not hide the one link
@@ -342,13 +341,13 @@ def test_screened_wake_up_finds_what_link_by_link_tests_find(monkeypatch):
     dear = design_prices(priced([3.0] * 6), FAST)
     assert len(dear.silent) == 6
     seen = []
-    real = D._wake_silent
+    real, screen_min = D._wake_silent, D.SCREEN_MIN
 
     def both(prob, best):
         screened = real(prob, best)
         monkeypatch.setattr(D, "SCREEN_MIN", 10 ** 9)
         alone = real(prob, best)
-        monkeypatch.setattr(D, "SCREEN_MIN", 4)
+        monkeypatch.setattr(D, "SCREEN_MIN", screen_min)
         seen.append((screened, alone))
         return screened
 
