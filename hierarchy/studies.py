@@ -338,24 +338,25 @@ def parse_range(text, place="range"):
 # transport and keys
 
 
+def _with_maps(spec: Spec, mapping) -> Spec:
+    """The spec with every name-keyed mapping passed through ``mapping``."""
+    return replace(
+        spec,
+        world=World(tuple(replace(b, driven_by=mapping(b.driven_by)) for b in spec.world.states)),
+        sensors=tuple(replace(s, observes=mapping(s.observes)) for s in spec.sensors),
+        areas=tuple(replace(a, pin=mapping(a.pin)) for a in spec.areas),
+        links=tuple(replace(l, pin=mapping(l.pin)) for l in spec.links))
+
+
 def _portable(spec: Spec) -> Spec:
     """The spec with plain dicts in place of read-only mappings, so that it
     pickles (to worker processes and Dask)."""
-    return replace(
-        spec,
-        world=World(tuple(replace(b, driven_by=dict(b.driven_by)) for b in spec.world.states)),
-        sensors=tuple(replace(s, observes=dict(s.observes)) for s in spec.sensors),
-        areas=tuple(replace(a, pin=dict(a.pin)) for a in spec.areas),
-        links=tuple(replace(l, pin=dict(l.pin)) for l in spec.links))
+    return _with_maps(spec, dict)
 
 
 def _restore(spec: Spec) -> Spec:
-    return replace(
-        spec,
-        world=World(tuple(replace(b, driven_by=frozen_map(b.driven_by)) for b in spec.world.states)),
-        sensors=tuple(replace(s, observes=frozen_map(s.observes)) for s in spec.sensors),
-        areas=tuple(replace(a, pin=frozen_map(a.pin)) for a in spec.areas),
-        links=tuple(replace(l, pin=frozen_map(l.pin)) for l in spec.links))
+    """The spec back with read-only mappings, as :func:`_portable` found it."""
+    return _with_maps(spec, frozen_map)
 
 
 def _plain(obj):

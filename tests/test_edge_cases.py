@@ -413,46 +413,27 @@ def leftovers(folder: Path) -> list:
     return [p.name for p in folder.iterdir() if p.name.startswith(".tmp-")]
 
 
-def test_write_failing_midway_leaves_the_old_file(tmp_path, monkeypatch):
+def _raise(exc):
+    def fail(*args):
+        raise exc
+    return fail
+
+
+@pytest.mark.parametrize("name,failing,error,match", [
+    # the disk fills up midway through a large write
+    ("fsync", OSError(errno.ENOSPC, "No space left on device"), InputError, "No space left on device"),
+    # the final rename is refused
+    ("replace", OSError(errno.EACCES, "Permission denied"), InputError, "any earlier version is untouched"),
+    # Ctrl-C while the bytes go to disk
+    ("fsync", KeyboardInterrupt(), KeyboardInterrupt, None),
+])
+def test_a_failed_write_leaves_the_old_file(tmp_path, monkeypatch, name, failing, error, match):
     target = tmp_path / "result.json"
     target.write_text("precious")
-    real_fsync = os.fsync
-
-    def disk_full(fd):
-        raise OSError(errno.ENOSPC, "No space left on device")
-
-    monkeypatch.setattr(os, "fsync", disk_full)
-    with pytest.raises(InputError, match="No space left on device"):
+    monkeypatch.setattr(os, name, _raise(failing))
+    with pytest.raises(error, match=match):
         hio.atomic_write_text(target, "x" * 100_000)
-    monkeypatch.setattr(os, "fsync", real_fsync)
-    assert target.read_text() == "precious"
-    assert leftovers(tmp_path) == []
-
-
-def test_failed_rename_leaves_the_old_file(tmp_path, monkeypatch):
-    target = tmp_path / "result.json"
-    target.write_text("precious")
-
-    def refuse(src, dst):
-        raise OSError(errno.EACCES, "Permission denied")
-
-    monkeypatch.setattr(os, "replace", refuse)
-    with pytest.raises(InputError, match="any earlier version is untouched"):
-        hio.atomic_write_text(target, "new")
-    assert target.read_text() == "precious"
-    assert leftovers(tmp_path) == []
-
-
-def test_ctrl_c_during_a_write_leaves_the_old_file(tmp_path, monkeypatch):
-    target = tmp_path / "result.json"
-    target.write_text("precious")
-
-    def interrupt(fd):
-        raise KeyboardInterrupt
-
-    monkeypatch.setattr(os, "fsync", interrupt)
-    with pytest.raises(KeyboardInterrupt):
-        hio.atomic_write_text(target, "new")
+    monkeypatch.undo()
     assert target.read_text() == "precious"
     assert leftovers(tmp_path) == []
 
