@@ -22,6 +22,7 @@ from .evaluate import Scores, link_covariances, link_powers, loop_radius, score
 from .gains import Gains, with_pins
 from .model import Spec
 from .problem import BudgetPenalty, Problem
+from .subcircuit import embed, without_predictions
 from .solver import CONVERGED, F_FLOOR, FAILED, ITERATION_LIMIT, minimise
 
 #: A link sending less than this fraction of its noise power (or of its
@@ -52,6 +53,13 @@ WAKE_DELTAS = (1e-2, 1e-1)
 BALANCE_SNR = 1e3
 #: Screen fully silent links together once there are more than this many.
 SCREEN_MIN = 4
+#: Iterations a stream switched on gets to show that it pays.
+STREAM_ITER = 150
+#: Streams tried per wake-up pass (shortest first); links on streams beyond
+#: this are reported as not tested.
+MAX_STREAMS = 12
+#: Searches whose objectives are within this (relative) of the best agree.
+AGREE_RTOL = 1e-6
 
 
 @dataclass
@@ -120,7 +128,12 @@ class DesignResult:
     budgets : dict
         :class:`BudgetUse` by budget name (budget form only).
     silent : dict
-        Link id -> the reason it is not worth sending.
+        Link id -> why it is silent: ``verdict`` ("not worth sending" only
+        when the wake-up test at this design found nothing, alone or with its
+        stream; else "untested"), ``tested``, ``stream`` and ``reason``.
+    searches : list of dict
+        What each search of :func:`design` reached (``search``,
+        ``objective``, ``status``).
     """
 
     spec: Spec
@@ -138,10 +151,21 @@ class DesignResult:
     budgets: dict = field(default_factory=dict)
     silent: dict = field(default_factory=dict)
     reference: "DesignResult | None" = None
+    searches: list = field(default_factory=list)
 
     @property
     def converged(self) -> bool:
         return self.status == CONVERGED
+
+    @property
+    def agreement(self) -> tuple:
+        """``(k, n)``: ``k`` of the ``n`` searches reached this design's
+        objective (within ``AGREE_RTOL``)."""
+        if not self.searches:
+            return (1, 1)
+        tol = AGREE_RTOL * max(abs(self.objective), F_FLOOR)
+        k = sum(1 for s in self.searches if abs(s["objective"] - self.objective) <= tol)
+        return (k, len(self.searches))
 
     def to_dict(self) -> dict:
         from .results import result_to_dict
@@ -217,6 +241,10 @@ def _polish(prob: Problem, x0, opts: Options, max_iter: int, wake: bool = True, 
         # sit silent (a saddle) while the rest of the design still creeps.
         if wake and moved is None and best.status != FAILED and wakes < 8:
             moved = _wake_silent(prob, best)
+            if moved is None:
+                moved = _wake_streams(prob, best, opts)
+            if moved is None:
+                prob.silence_checked = (best.f, _tested_links(prob, best))
             wakes += 1
         if best.status == CONVERGED:
             # Switching links off (or waking them) and converging again must
@@ -387,6 +415,151 @@ def _wake_silent(prob: Problem, best):
     return None
 
 
+def _flow(prob: Problem, silent: set):
+    """Nodes that world information reaches along links that carry power
+    (from the sensors) and nodes whose signal reaches a target that way."""
+    spec = prob.spec
+    active = [l for l in spec.links if l.id not in silent]
+    informed = {s.name for s in spec.sensors}
+    grew = True
+    while grew:
+        grew = False
+        for l in active:
+            if l.source in informed and l.target not in informed:
+                informed.add(l.target)
+                grew = True
+    useful = {a.name for a in spec.areas if a.has_target and a.weight > 0}
+    grew = True
+    while grew:
+        grew = False
+        for l in active:
+            if l.target in useful and l.source not in useful:
+                useful.add(l.source)
+                grew = True
+    return informed, useful
+
+
+def _path(links, starts, goals, forward: bool):
+    """Fewest ``links`` from a node in ``starts`` to one in ``goals`` (along
+    the links' direction if ``forward``, else against it), or ``None``."""
+    if starts & goals:
+        return []
+    step = {}
+    for l in links:
+        a, b = (l.source, l.target) if forward else (l.target, l.source)
+        step.setdefault(a, []).append((b, l))
+    seen, frontier = set(starts), [(n, []) for n in starts]
+    while frontier:
+        nxt = []
+        for node, path in frontier:
+            for other, l in step.get(node, ()):
+                if other in seen:
+                    continue
+                if other in goals:
+                    return path + [l]
+                seen.add(other)
+                nxt.append((other, path + [l]))
+        frontier = nxt
+    return None
+
+
+def _streams(prob: Problem, powers: dict):
+    """Streams of silent links that only pay when all of them are on.
+
+    A silent link whose sender hears nothing of the world (no carrying path
+    from a sensor reaches it) or whose receiver passes nothing on to a target
+    cannot show its worth alone: a small signal on it changes no error. Its
+    stream is the link with the fewest silent links that bring the world to
+    its sender and carry its signal on to a target.
+
+    Returns ``(streams, dead)``: the distinct streams (tuples of link ids,
+    shortest first) and the orphan links that no stream can serve."""
+    silent = set(_silent_ids(prob, powers))
+    informed, useful = _flow(prob, silent)
+    quiet = [l for l in prob.spec.links if l.id in silent]
+    streams, dead = {}, []
+    for l in quiet:
+        if not prob.sender_slices(l.id) or (l.source in informed and l.target in useful):
+            continue
+        before = _path(quiet, {l.source}, informed, forward=False)
+        after = _path(quiet, {l.target}, useful, forward=True)
+        if before is None or after is None:
+            dead.append(l.id)
+            continue
+        ids = tuple(sorted({l.id} | {x.id for x in before} | {x.id for x in after}))
+        streams.setdefault(ids, None)
+    return sorted(streams, key=len), dead
+
+
+def _wake_streams(prob: Problem, best, opts: Options):
+    """Switch whole silent streams on and see whether they pay.
+
+    Along a stream of two or more silent links the objective is flat to
+    every order a one-link test can see (the first link's signal reaches no
+    target until the next one carries it). Near zero the curvature along the
+    stream only turns negative once the downstream gains have a finite size,
+    so the test is a finite excursion: every gain of the stream (and the
+    memory ``M`` of the areas it passes through that hear nothing else) is
+    set to the informed start's values, near an SNR of one, and the quasi-
+    Newton method gets ``STREAM_ITER`` iterations to bring the rest of the
+    design along. The lowest point that beats ``best`` is returned."""
+    powers = _link_powers(prob, best.x)
+    streams, dead = _streams(prob, powers)
+    prob.stream_cover = {lid: None for lid in dead}
+    if not streams:
+        return None
+    if getattr(prob, "_informed_theta", None) is None:
+        prob._informed_theta = prob.pack(prob.informed_start())
+    ref = prob._informed_theta
+    silent = set(_silent_ids(prob, powers))
+    informed, _ = _flow(prob, silent)
+    winner = None
+    for ids in streams[:MAX_STREAMS]:
+        theta = best.x.copy()
+        links = [prob.spec.link(lid) for lid in ids]
+        for link in links:
+            for sl in prob.slices(link.id) + _receivers(prob, link):
+                theta[sl] = ref[sl]
+        for node in {l.source for l in links} | {l.target for l in links}:
+            if node not in informed:
+                for sl in prob.slices(node, "M"):
+                    theta[sl] = ref[sl]
+        for _ in range(12):  # the woken receivers must leave the loop stable
+            if np.isfinite(prob.value_and_grad(theta)[0]):
+                break
+            for link in links:
+                for sl in prob.receiver_slices(link.id):
+                    theta[sl] *= 0.5
+        else:
+            continue
+        out = minimise(prob.value_and_grad, theta, max_iter=STREAM_ITER, gtol=opts.gtol, ftol=opts.ftol,
+                       unit=prob.units(theta))
+        for lid in ids:
+            prob.stream_cover.setdefault(lid, ids)
+        bar = best.f if winner is None else winner.f
+        if np.isfinite(out.f) and out.f < bar - 1e-9 * max(abs(bar), F_FLOOR):
+            winner = out
+    return None if winner is None else winner.x
+
+
+def _tested_links(prob: Problem, best) -> dict:
+    """How each silent link at ``best`` was tested by the wake-up pass that
+    found nothing: ``"alone"``, a stream (tuple of ids) or ``None`` (no
+    stream from a sensor to a target can pass through it)."""
+    powers = _link_powers(prob, best.x)
+    cover = getattr(prob, "stream_cover", {})
+    out = {}
+    streams, dead = _streams(prob, powers)
+    orphans = {lid for s in streams for lid in s} | set(dead)
+    for lid in _silent_ids(prob, powers):
+        if lid in orphans:
+            if lid in cover:
+                out[lid] = cover[lid]
+        else:
+            out[lid] = "alone"
+    return out
+
+
 def _screen(prob: Problem, theta0, tests):
     """``(test, trial, delta)`` of the fully silent links whose quadratic
     model along the trial direction may fall; ``None`` if it cannot tell.
@@ -456,23 +629,35 @@ def _best_receiver_step(prob: Problem, theta, receiver_slices, f0):
     return None
 
 
-def _silence_reasons(prob: Problem, powers) -> dict:
-    """For each silent link, the numbers that say why: what a small signal
-    would buy per unit of power, against what a unit of power costs."""
+def _silence_reasons(prob: Problem, powers, tested=None) -> dict:
+    """For each silent link, why: what the wake-up pass at this very design
+    tested and found (``tested``, from :func:`_tested_links`), or that it was
+    not tested there, in which case nothing is claimed."""
+    tested = tested or {}
     out = {}
     for lid in _silent_ids(prob, powers):
         i = prob.layout.link_index[lid]
         price = float(prob.prices[i])
-        out[lid] = {
-            "price": price,
-            "noise_power": float(np.trace(prob.spec.link(lid).noise)),
-            "reason": (
-                f"no small signal on this link lowers the objective: each unit of power costs {price:.3g} "
-                "and buys less than that in error"
-                if price > 0 else
-                "no small signal on this link lowers the error"
-            ),
-        }
+        how = tested.get(lid, "untested")
+        cost = (f"each unit of power costs {price:.3g} and buys less than that in error" if price > 0
+                else "it buys no lower error")
+        if how == "alone":
+            reason, verdict = f"no small signal on this link lowers the objective: {cost}", "not worth sending"
+        elif how is None:
+            reason = "no path of links from a sensor to a target passes through it: it has nothing useful to carry"
+            verdict = "not worth sending"
+        elif how == "untested":
+            reason = ("silent at this design, but the wake-up test did not run here (iteration limit or test "
+                      "budget): it may yet be worth sending")
+            verdict = "untested"
+        else:
+            reason = (f"its stream ({', '.join(how)}) only pays with all of it on; switched on together and "
+                      f"re-designed, it did not lower the objective: {cost}")
+            verdict = "not worth sending"
+        out[lid] = {"price": price, "noise_power": float(np.trace(prob.spec.link(lid).noise)),
+                    "verdict": verdict, "tested": "stream" if isinstance(how, tuple) else
+                    ("unreachable" if how is None else how),
+                    "stream": list(how) if isinstance(how, tuple) else None, "reason": reason}
     return out
 
 
@@ -517,7 +702,9 @@ def _finish(prob: Problem, theta, best, iterations, nstarts, seconds, form) -> D
         status, message = FAILED, "no stable design was found from any start"
     scores = score(prob.layout, gains)
     powers = {k: v.power for k, v in scores.links.items()}
-    silent = _silence_reasons(prob, powers)
+    checked = getattr(prob, "silence_checked", None)
+    tested = checked[1] if checked is not None and checked[0] == best.f else None
+    silent = _silence_reasons(prob, powers, tested)
     return DesignResult(spec, status, message, gains, scores, scores.objective, form,
                         iterations=iterations, restarts=nstarts, evaluations=prob.evaluations,
                         seconds=seconds, grad_norm=best.grad_norm, silent=silent)
@@ -694,23 +881,61 @@ def design(spec: Spec, options: Options | None = None, start: Gains | None = Non
            compare_unpinned: bool = True) -> DesignResult:
     """Design a circuit: budget form if the spec has budgets, else price form.
 
+    Two searches are run and the better design kept. The first starts from
+    ``start`` or from several starts (see :class:`Options`); the second
+    designs the feed-forward sub-circuit (every prediction off) and carries
+    that design on in the whole circuit, so the design is never worse than
+    the best feed-forward one (the sub-circuit invariant). Both wake silent
+    links, alone and in streams, before they stop. ``result.searches`` says
+    what each search reached and ``result.agreement`` how many agree.
+
     When the spec pins gains and ``compare_unpinned`` is true, the same
     circuit with every gain free is designed too and kept as
     ``result.reference``, so a hand-built circuit is shown beside the optimum.
 
     Examples
     --------
-    >>> import hierarchy
-    >>> res = hierarchy.design(hierarchy.load_spec("specs/single-loop.yaml"))  # doctest: +SKIP
-    >>> res.scores.areas["v1"].error                                           # doctest: +SKIP
-    0.19...
+    >>> from hierarchy import load_spec
+    >>> res = design(load_spec("specs/single-loop.yaml"))
+    >>> res.status, res.agreement
+    ('converged', (1, 1))
     """
+    opts = options or Options()
     run = design_budgets if spec.budgets else design_prices
-    result = run(spec, options, start)
+    t0 = time.perf_counter()
+    result = run(spec, opts, start)
+    searches = [("given start" if start is not None else "multistart", result)]
+    sub = without_predictions(spec)
+    if sub is not None:
+        # A design of the sub-circuit is a design of this circuit with the
+        # predictions silent; carried on from there, it can only improve.
+        part = run(sub, opts)
+        if np.isfinite(part.objective):
+            searches.append(("feed-forward first", run(spec, opts, embed(part.gains, sub, spec))))
+    result = _best_of(searches)
+    result.seconds = time.perf_counter() - t0
+    result.searches = [{"search": name, "objective": float(r.objective), "status": r.status}
+                       for name, r in searches]
     free = without_pins(spec)
     if compare_unpinned and free is not None:
-        result.reference = run(free, options)
+        result.reference = run(free, opts)
     return result
+
+
+def _usable(result) -> bool:
+    return np.isfinite(result.objective) and all(b.met for b in result.budgets.values())
+
+
+def _best_of(searches) -> DesignResult:
+    """The lowest objective among the searches whose designs are usable
+    (finite, budgets met), preferring a converged one on a tie."""
+    results = [r for _, r in searches]
+    usable = [r for r in results if _usable(r)] or results
+    best = min(usable, key=lambda r: (r.objective, not r.converged))
+    best.iterations = sum(r.iterations for r in results)
+    best.evaluations = sum(r.evaluations for r in results)
+    best.restarts = sum(r.restarts for r in results)
+    return best
 
 
 def without_pins(spec: Spec):

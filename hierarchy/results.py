@@ -81,6 +81,8 @@ def result_to_dict(result) -> dict:
             "evaluations": result.evaluations,
             "seconds": result.seconds,
             "grad_norm": result.grad_norm,
+            "searches": list(result.searches),
+            "agreement": list(result.agreement),
         },
         "budgets": {
             name: {"total": b.total, "used": b.used, "shadow_price": b.shadow_price,
@@ -90,7 +92,10 @@ def result_to_dict(result) -> dict:
     })
     for lid, row in d["links"].items():
         row["silent"] = lid in result.silent
-        row["silent_reason"] = result.silent.get(lid, {}).get("reason")
+        info = result.silent.get(lid, {})
+        row["silent_reason"] = info.get("reason")
+        row["silent_verdict"] = info.get("verdict")
+        row["silent_stream"] = info.get("stream")
         row["share_of_budget"] = {
             name: (result.scores.links[lid].power / b.total if b.total > 0 else None)
             for name, b in result.budgets.items() if lid in b.links
@@ -190,17 +195,23 @@ def result_text(result) -> str:
         rows = [[b.name, fmt(b.total), fmt(b.used), f"{100 * b.used / b.total:.2f}%" if b.total else "-",
                  fmt(b.shadow_price), "yes" if b.met else "NO"] for b in result.budgets.values()]
         parts.append(table(["budget", "total", "used", "use", "shadow price", "met"], rows))
-    if result.silent:
-        parts.append("not worth sending:\n" + "\n".join(
-            f"  {lid}: {info['reason']}" for lid, info in result.silent.items()))
+    for verdict, head in (("not worth sending", "not worth sending (checked at this design):"),
+                          ("untested", "silent, but not checked at this design:")):
+        rows = [f"  {lid}: {info['reason']}" for lid, info in result.silent.items() if info.get("verdict") == verdict]
+        if rows:
+            parts.append(head + "\n" + "\n".join(rows))
     if result.reference is not None:
         ref = result.reference
         gap = result.objective - ref.objective
         parts.append(f"pinned gains vs all gains free: objective {fmt(result.objective, 6)} vs "
                      f"{fmt(ref.objective, 6)} (gap {fmt(gap, 4)}, "
                      f"{fmt(100 * gap / abs(ref.objective) if ref.objective else None, 3)}%; free design {ref.status})")
-    verdict = {"converged": "converged", "iteration limit": "NOT converged (iteration limit)",
+    verdict = {"converged": "converged to a stationary point (a local optimum)",
+               "iteration limit": "NOT converged (iteration limit)",
                "failed": "FAILED"}.get(result.status, result.status)
-    parts.append(f"solver: {verdict}: {result.message}; {result.iterations} iterations, "
+    k, n = result.agreement
+    agree = (f"; {k} of {n} searches reached it" if n > 1 else "") + (
+        f" ({', '.join(s['search'] + ' ' + fmt(s['objective'], 6) for s in result.searches)})" if k < n else "")
+    parts.append(f"solver: {verdict}{agree}: {result.message}; {result.iterations} iterations, "
                  f"{result.restarts} starts, {result.evaluations} evaluations, {result.seconds:.2f} s")
     return "\n\n".join(parts)
