@@ -241,8 +241,9 @@ def _polish(prob: Problem, x0, opts: Options, max_iter: int, wake: bool = True, 
         # sit silent (a saddle) while the rest of the design still creeps.
         if wake and moved is None and best.status != FAILED and wakes < 8:
             moved = _wake_silent(prob, best)
-            if moved is None:
-                moved = _wake_streams(prob, best, opts)
+            if moved is None and iterations < max_iter:
+                moved, used = _wake_streams(prob, best, opts, max_iter - iterations)
+                iterations += used
             if moved is None:
                 prob.silence_checked = (best.f, _tested_links(prob, best))
             wakes += 1
@@ -491,7 +492,7 @@ def _streams(prob: Problem, powers: dict):
     return sorted(streams, key=len), dead
 
 
-def _wake_streams(prob: Problem, best, opts: Options):
+def _wake_streams(prob: Problem, best, opts: Options, budget: int = STREAM_ITER * MAX_STREAMS):
     """Switch whole silent streams on and see whether they pay.
 
     Along a stream of two or more silent links the objective is flat to
@@ -502,12 +503,14 @@ def _wake_streams(prob: Problem, best, opts: Options):
     memory ``M`` of the areas it passes through that hear nothing else) is
     set to the informed start's values, near an SNR of one, and the quasi-
     Newton method gets ``STREAM_ITER`` iterations to bring the rest of the
-    design along. The lowest point that beats ``best`` is returned."""
+    design along, within ``budget`` iterations in all. Returns the lowest
+    point that beats ``best`` (or ``None``) and the iterations used."""
     powers = _link_powers(prob, best.x)
     streams, dead = _streams(prob, powers)
     prob.stream_cover = {lid: None for lid in dead}
+    used = 0
     if not streams:
-        return None
+        return None, used
     if getattr(prob, "_informed_theta", None) is None:
         prob._informed_theta = prob.pack(prob.informed_start())
     ref = prob._informed_theta
@@ -515,6 +518,8 @@ def _wake_streams(prob: Problem, best, opts: Options):
     informed, _ = _flow(prob, silent)
     winner = None
     for ids in streams[:MAX_STREAMS]:
+        if budget - used < 1:
+            break
         theta = best.x.copy()
         links = [prob.spec.link(lid) for lid in ids]
         for link in links:
@@ -532,14 +537,15 @@ def _wake_streams(prob: Problem, best, opts: Options):
                     theta[sl] *= 0.5
         else:
             continue
-        out = minimise(prob.value_and_grad, theta, max_iter=STREAM_ITER, gtol=opts.gtol, ftol=opts.ftol,
-                       unit=prob.units(theta))
+        out = minimise(prob.value_and_grad, theta, max_iter=min(STREAM_ITER, budget - used), gtol=opts.gtol,
+                       ftol=opts.ftol, unit=prob.units(theta))
+        used += out.iterations
         for lid in ids:
             prob.stream_cover.setdefault(lid, ids)
         bar = best.f if winner is None else winner.f
         if np.isfinite(out.f) and out.f < bar - 1e-9 * max(abs(bar), F_FLOOR):
             winner = out
-    return None if winner is None else winner.x
+    return (None if winner is None else winner.x), used
 
 
 def _tested_links(prob: Problem, best) -> dict:
