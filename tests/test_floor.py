@@ -1,0 +1,333 @@
+"""The information floor against closed forms, reference libraries and designs.
+
+Sources are named beside each check."""
+
+import dataclasses
+import math
+from pathlib import Path
+
+import numpy as np
+import pytest
+import scipy.linalg as sla
+from scipy.optimize import brentq, minimize_scalar
+
+from hierarchy import evaluate
+from hierarchy.design import Options, design
+from hierarchy.floor import (OPTIMAL, SKIPPED, Floor, information_floor, least_cut_energy,
+                             least_error, link_capacity)
+from hierarchy.gains import Gains, gain_shapes
+from hierarchy.generate import generate_spec_text
+from hierarchy.spec import load_spec, parse_spec
+
+SPECS = sorted(Path(__file__).resolve().parent.parent.joinpath("specs").glob("*.yaml"))
+FAST = Options(restarts=3, max_iter=2000)
+
+
+def ar1_spec(a, q, N, price=None, budget=None, lag=1, weight=1.0, sensor_noise=0.0, prediction=True):
+    """AR(1) world read by one sensor; one residual link of noise N up, and
+    (with ``prediction``) a free, noiseless prediction down."""
+    cost = f", price: {price}" if price is not None else ""
+    text = f"""
+spec: 1
+world:
+  states:
+    x: {{dim: 1, dynamics: {a}, noise: {q}}}
+sensors:
+  s: {{observes: {{x: 1}}, noise: {sensor_noise}}}
+areas:
+  e: {{tracks: x, lag: {lag}, weight: {weight}}}
+links:
+  - {{from: s, to: e, kind: residual, noise: {N}{cost}}}
+"""
+    if prediction:
+        text += "  - {from: e, to: s, kind: prediction}\n"
+    if budget is not None:
+        text += f"budgets: [{{name: b, links: all, total: {budget}}}]\n"
+    return parse_spec(text)
+
+
+# ---------------------------------------------------------------------------
+# scalar sequential rate-distortion (model.md 'Information floor'; Tanaka,
+# Kim, Parrilo & Mitter, IEEE TAC 2017, scalar case): R(D) = 1/2 log2(a^2 + q/D),
+# attained over a noise-N channel with P = N (a^2 + q/D - 1).
+
+A, Q, N = 0.9, 0.2, 0.1
+
+
+def srd_power(D):
+    return N * (A * A + Q / D - 1)
+
+
+@pytest.mark.parametrize("lag", [0, 1])
+def test_scalar_rate_distortion_closed_form(lag):
+    lam, w = 0.05, 1.0
+    floor = information_floor(ar1_spec(A, Q, N, price=lam, lag=lag, weight=w))
+    # Filtering error D; a lag-0 area predicts, error a^2 D + q.
+    c = A * A if lag == 0 else 1.0
+    D = math.sqrt(lam * N * Q / (w * c))       # minimiser of w c D + lam N (a^2 + q/D - 1)
+    assert D < Q / (1 - A * A)                 # inside the range where the rate is positive
+    err = c * D + (Q if lag == 0 else 0.0)
+    expected = w * err + lam * srd_power(D)
+    assert floor.status == OPTIMAL
+    assert floor.objective == pytest.approx(expected, rel=1e-6)
+    assert floor.objective <= expected
+    # The minimiser sits in a flat valley: it is known to about the square
+    # root of the solver's tolerance, the value to the tolerance itself.
+    assert floor.per_area["e"] == pytest.approx(err, rel=1e-3)
+    assert floor.cut_powers["s->e"] == pytest.approx(srd_power(D), rel=1e-3)
+    assert floor.rate_bits == pytest.approx(0.5 * math.log2(A * A + Q / D), rel=1e-3)
+
+
+def test_least_energy_and_least_error_invert_the_closed_form():
+    spec = ar1_spec(A, Q, N, price=0.05)
+    for D in (0.02, 0.1, 0.3):
+        energy = least_cut_energy(spec, {"e": D})
+        assert energy.kind == "cut energy"
+        assert energy.objective == pytest.approx(srd_power(D), rel=1e-6)
+        error = least_error(spec, srd_power(D))
+        assert error.objective == pytest.approx(D, rel=1e-6)
+    # An error above the prior needs no energy at all (R(D) = 0 there).
+    assert least_cut_energy(spec, {"e": 2 * Q / (1 - A * A)}).objective == pytest.approx(0, abs=1e-8)
+
+
+def test_errors_below_the_sensor_floor_are_infeasible_not_a_number():
+    spec = ar1_spec(A, Q, N, price=0.05, sensor_noise=0.3)
+    floor = information_floor(spec)
+    low = least_cut_energy(spec, {"e": 0.5 * floor.area_floors["e"]})
+    assert low.status == "infeasible" and math.isnan(low.objective)
+    assert "sensors alone" in low.message
+
+
+def test_designed_single_loop_meets_the_bound():
+    # With a free noiseless prediction the circuit can send innovations, which
+    # attains R(D) (model.md); the designed optimum is never below the bound.
+    spec = ar1_spec(A, Q, N, price=0.05)
+    floor = information_floor(spec)
+    res = design(spec)
+    assert res.objective >= floor.objective
+    assert floor.gap(res.objective) < 1e-4
+
+
+def test_without_prediction_the_design_stays_above_the_bound():
+    # Without the prediction a circuit can only send samples of the state,
+    # which wastes power on what the area already knows: strictly above.
+    spec = ar1_spec(A, Q, N, price=0.05, prediction=False)
+    floor = information_floor(spec)
+    res = design(spec, FAST)
+    assert floor.gap(res.objective) > 1e-3
+
+
+# ---------------------------------------------------------------------------
+# uncoded Gaussian limit (Goblick, IEEE Trans. Inf. Theory 1965): a memoryless
+# Gaussian source over a Gaussian channel, error s2 / (1 + P/N), attained.
+
+def test_uncoded_gaussian_limit_is_attained():
+    s2, N, B = 2.0, 0.5, 3.0
+    spec = ar1_spec(0.0, s2, N, budget=B, prediction=False)
+    floor = information_floor(spec)
+    expected = s2 / (1 + B / N)
+    assert floor.objective == pytest.approx(expected, rel=1e-6)
+    res = design(spec, FAST)
+    assert res.objective == pytest.approx(floor.objective, rel=1e-5)
+    assert res.objective >= floor.objective
+
+
+def test_vector_link_water_filling_against_reverse_water_filling():
+    # Two independent memoryless sources over one vector link with rotated
+    # noise: capacity by water-filling on the noise eigenvalues, distortion by
+    # reverse water-filling on the variances (Cover & Thomas, Elements of
+    # Information Theory, 2006, Thm 9.4.1 and Thm 10.3.3).
+    var, nev, B = np.array([3.0, 0.3]), np.array([0.1, 1.0]), 0.8
+    R = np.array([[math.cos(0.4), -math.sin(0.4)], [math.sin(0.4), math.cos(0.4)]])
+    noise = R @ np.diag(nev) @ R.T
+    spec = parse_spec(f"""
+spec: 1
+world:
+  states:
+    x0: {{dim: 1, dynamics: 0, noise: {var[0]}}}
+    x1: {{dim: 1, dynamics: 0, noise: {var[1]}}}
+sensors:
+  s: {{observes: {{x0: [[1], [0]], x1: [[0], [1]]}}, noise: 0}}
+areas:
+  a: {{tracks: [x0, x1], lag: 1}}
+links:
+  - {{from: s, to: a, kind: residual, noise: {noise.tolist()}}}
+budgets: [{{name: b, links: all, total: {B}}}]
+""")
+    cap = link_capacity(noise, B) * math.log(2)            # nats
+    theta = brentq(lambda t: 0.5 * np.log(var / np.minimum(t, var)).sum() - cap, 1e-9, var.max())
+    expected = np.minimum(theta, var).sum()
+    assert information_floor(spec).objective == pytest.approx(expected, rel=1e-6)
+
+
+def test_link_capacity_closed_form():
+    # Water-filling (Cover & Thomas 2006, Thm 9.4.1) on two parallel channels.
+    n1, n2 = 0.2, 1.0
+    for P in (0.3, 0.8, 5.0):
+        if P <= n2 - n1:
+            expected = 0.5 * math.log2(1 + P / n1)
+        else:
+            mu = (P + n1 + n2) / 2
+            expected = 0.5 * math.log2(mu / n1) + 0.5 * math.log2(mu / n2)
+        assert link_capacity(np.diag([n2, n1]), P) == pytest.approx(expected, rel=1e-12)
+    assert link_capacity([[0.0]], 1.0) == math.inf
+    assert link_capacity([[1.0]], 0.0) == 0.0
+
+
+# ---------------------------------------------------------------------------
+# Kalman limits: unlimited channels leave the sensor floor.
+
+A2 = np.array([[0.9, 0.2], [0.0, 0.7]])
+Q2 = np.diag([0.1, 0.2])
+C2 = np.array([[1.0, 0.5]])
+R2 = np.array([[0.3]])
+
+
+def kalman_spec(lag, noise=0):
+    return parse_spec(f"""
+spec: 1
+world:
+  states:
+    x: {{dim: 2, dynamics: {A2.tolist()}, noise: {Q2.tolist()}}}
+sensors:
+  s: {{observes: {{x: {C2.tolist()}}}, noise: {R2.tolist()}}}
+areas:
+  a: {{tracks: x, lag: {lag}}}
+links:
+  - {{from: s, to: a, kind: residual, noise: {noise}{", price: 1e-9" if noise else ""}}}
+  - {{from: a, to: s, kind: prediction}}
+""")
+
+
+@pytest.mark.parametrize("lag", [0, 1])
+def test_kalman_limit_matches_riccati(lag):
+    # a-priori covariance from scipy.linalg.solve_discrete_are (dual form);
+    # a-posteriori P - P C'(C P C' + R)^-1 C P.
+    P = sla.solve_discrete_are(A2.T, C2.T, Q2, R2)
+    post = P - P @ C2.T @ np.linalg.solve(C2 @ P @ C2.T + R2, C2 @ P)
+    expected = np.trace(P) if lag == 0 else np.trace(post)
+    floor = information_floor(kalman_spec(lag))
+    assert floor.objective == pytest.approx(expected, rel=1e-8)
+    assert floor.area_floors["a"] == pytest.approx(expected, rel=1e-10)
+    assert any("noiseless" in r for r in floor.loose)
+    # A nearly free noisy channel approaches the same floor from above.
+    cheap = information_floor(kalman_spec(lag, noise=0.01))
+    assert expected <= cheap.objective <= expected * (1 + 1e-4)
+
+
+def test_kalman_limit_matches_python_control():
+    # python-control's dlqe: a-priori covariance P, and L = A P C'(CPC'+R)^-1.
+    control = pytest.importorskip("control")
+    _, P, _ = control.dlqe(A2, np.eye(2), C2, Q2, R2)
+    assert information_floor(kalman_spec(0)).objective == pytest.approx(np.trace(P), rel=1e-8)
+
+
+def test_smoothing_floor_matches_gaussian_conditioning():
+    # Lag 2: estimate x(t-2) from sensors up to t-1. Reference: condition the
+    # stationary joint Gaussian of (x(t-2), y(t-W..t-1)) directly over a long
+    # window (Schur complement; common practice, no source).
+    spec = kalman_spec(2)
+    W = 60
+    Sx = sla.solve_discrete_lyapunov(A2, Q2)
+    cov_x = lambda i, j: (np.linalg.matrix_power(A2, i - j) @ Sx if i >= j
+                          else Sx @ np.linalg.matrix_power(A2.T, j - i))
+    times = list(range(W))  # y at times 0..W-1, target x at time W-2
+    Syy = np.block([[C2 @ cov_x(i, j) @ C2.T + (R2 if i == j else 0) for j in times] for i in times])
+    Sxy = np.hstack([cov_x(W - 2, j) @ C2.T for j in times])
+    expected = np.trace(Sx - Sxy @ np.linalg.solve(Syy, Sxy.T))
+    assert information_floor(spec).objective == pytest.approx(expected, rel=1e-8)
+
+
+# ---------------------------------------------------------------------------
+# never above an achieved objective
+
+@pytest.mark.parametrize("path", SPECS, ids=lambda p: p.stem)
+def test_bound_below_the_designed_objective_of_every_example(path):
+    spec = load_spec(path)
+    floor = information_floor(spec)
+    assert floor.status == OPTIMAL
+    res = design(spec)
+    assert floor.objective <= res.objective
+    assert floor.objective > 0
+
+
+def random_gains(spec, rng, radius=0.8):
+    """Random gains with the areas' block of the closed loop at spectral radius
+    about ``radius`` (scaled after drawing)."""
+    from hierarchy.closedloop import Layout, assemble
+    from hierarchy.evaluate import spectral_radius
+    from hierarchy.gains import with_pins
+
+    shapes = gain_shapes(spec)
+    g = Gains()
+    for name, blocks in shapes["areas"].items():
+        g.areas[name] = {k: rng.normal(size=s) / math.sqrt(s[1]) for k, s in blocks.items()}
+    for lid, blocks in shapes["links"].items():
+        g.links[lid] = {k: rng.normal(size=s) / math.sqrt(s[1]) for k, s in blocks.items()}
+    lay = Layout(spec)
+    r = spectral_radius(assemble(lay, with_pins(spec, g)).Phi[lay.nx:, lay.nx:])
+    for blocks in g.areas.values():
+        blocks["M"] *= radius / max(r, 1e-9)
+    for blocks in g.links.values():
+        if "K" in blocks:
+            blocks["K"] *= radius / max(r, 1e-9)
+    return g
+
+
+@pytest.mark.parametrize("path", SPECS, ids=lambda p: p.stem)
+def test_bound_below_random_circuits(path):
+    # Any gains make a circuit; in budget form the budgets are set to what the
+    # random circuit uses, so it is feasible for the spec the bound is taken of.
+    spec = load_spec(path)
+    rng = np.random.default_rng(7)
+    for _ in range(5):
+        g = random_gains(spec, rng)
+        sc = evaluate(spec, g)
+        used = {b.name: sum(sc.links[i].power for i in b.links) for b in spec.budgets}
+        feasible = dataclasses.replace(spec, budgets=tuple(
+            dataclasses.replace(b, total=used[b.name]) for b in spec.budgets))
+        floor = information_floor(feasible)
+        assert floor.status == OPTIMAL
+        assert floor.objective <= sc.objective
+
+
+@pytest.mark.parametrize("seed", [1, 2])
+def test_bound_below_designs_of_generated_circuits(seed):
+    spec = parse_spec(generate_spec_text(areas=4, levels=2, density=0.5, seed=seed, max_lag=2))
+    floor = information_floor(spec)
+    res = design(spec, FAST)
+    assert floor.status == OPTIMAL
+    assert floor.objective <= res.objective
+
+
+# ---------------------------------------------------------------------------
+# the Floor object
+
+def test_skipped_for_large_worlds_and_gap_is_nan_without_a_bound():
+    spec = kalman_spec(0)
+    floor = information_floor(spec, max_dim=1)
+    assert floor.status == SKIPPED and math.isnan(floor.objective)
+    assert math.isnan(floor.gap(1.0))
+    assert floor.to_dict()["objective"] is None
+    ok = Floor("objective", 0.8, OPTIMAL, "")
+    assert ok.gap(1.0) == pytest.approx(0.2)
+
+
+def test_no_link_from_a_sensor_leaves_the_prior():
+    # Nothing crosses the cut: the error cannot beat the stationary variance
+    # q / (1 - a^2) (AR(1) variance, common practice, no source).
+    spec = parse_spec("""
+spec: 1
+world:
+  states:
+    x: {dim: 1, dynamics: 0.8, noise: 0.36}
+sensors:
+  s: {observes: {x: 1}, noise: 0.1}
+areas:
+  a: {tracks: x, lag: 1}
+  b: {dim: 1}
+links:
+  - {from: b, to: a, kind: residual, noise: 0.1, price: 0.1}
+""")
+    floor = information_floor(spec)
+    assert floor.objective == pytest.approx(0.36 / (1 - 0.64), rel=1e-10)
