@@ -12,6 +12,7 @@ __version__ = "0.1.0"
 
 from .circuit import Circuit
 from .errors import GainsError, HierarchyError, InputError, SpecError, UnstableError
+from .floor import Floor, information_floor
 from .gains import Gains, load_gains, save_gains
 
 
@@ -49,6 +50,7 @@ def design(spec, options=None, start=None, compare_unpinned=True):
 
 
 __all__ = [
-    "Circuit", "Gains", "GainsError", "HierarchyError", "InputError", "SpecError", "UnstableError",
-    "design", "evaluate", "load", "load_gains", "load_spec", "save_gains",
+    "Circuit", "Floor", "Gains", "GainsError", "HierarchyError", "InputError", "SpecError",
+    "UnstableError", "design", "evaluate", "information_floor", "load", "load_gains", "load_spec",
+    "save_gains",
 ]

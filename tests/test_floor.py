@@ -331,3 +331,28 @@ links:
 """)
     floor = information_floor(spec)
     assert floor.objective == pytest.approx(0.36 / (1 - 0.64), rel=1e-10)
+
+
+def test_docstring_examples_run(monkeypatch):
+    # The Examples sections are doctests; they read specs/ from the repository root.
+    import doctest
+
+    import hierarchy.floor as module
+
+    monkeypatch.chdir(Path(__file__).resolve().parent.parent)
+    result = doctest.testmod(module)
+    assert result.attempted > 0 and result.failed == 0
+
+
+@pytest.mark.parametrize("call", [
+    lambda s: least_cut_energy(s, {"nowhere": 0.1}),
+    lambda s: least_cut_energy(s, {"e": -1.0}),
+    lambda s: least_cut_energy(s, {"e": "0.1"}),
+    lambda s: least_error(s, float("nan")),
+])
+def test_bad_limits_are_input_errors(call):
+    from hierarchy.errors import InputError
+
+    with pytest.raises(InputError) as info:
+        call(ar1_spec(A, Q, N, price=0.05))
+    assert info.value.fix
