@@ -19,6 +19,7 @@ from __future__ import annotations
 
 import math
 import time
+import warnings
 from dataclasses import dataclass, field
 
 import numpy as np
@@ -41,6 +42,8 @@ _GAP = 1e-10
 #: Relative margin taken off the solver's value: its primal value can sit
 #: above the true optimum by its residuals, about 1e-9 with exponential cones.
 _MARGIN = 1e-8
+#: How close primal and dual objectives must be to accept an "almost solved" run.
+_ALMOST = 1e-8
 #: Riccati iterations allowed when the sensor noise is singular (no DARE).
 _RICCATI_ITER = 200_000
 
@@ -51,6 +54,7 @@ LOOSE_SMOOTH = "smoothing areas (lag >= 2) bounded by the unlimited-channel smoo
 LOOSE_NOISELESS = "a noiseless cut link: channel limits dropped, sensor floor only"
 LOOSE_PRICES = "prices of links above the cut and activity prices dropped"
 LOOSE_MEMORY = "area sizes (reduced-order filters) and link widths ignored"
+LOOSE_DEGENERATE = "the rate term could not be formed (degenerate estimate process): sensor floor only"
 LOOSE_UNCODED = "coding across time allowed (a circuit sends one linear sample per step)"
 
 
@@ -287,42 +291,36 @@ def _read(spec: Spec) -> _Cut:
     return _Cut(A, Q, (post + post.T) / 2, targets, fixed, cut, noiseless, budgets, prices, dropped)
 
 
-def _errors_at(cut: _Cut, Pi_full):
-    """Each target's error for a given covariance of ``x(t)`` given the cut (numpy or CVXPY)."""
+def _errors_at(cut: _Cut, Pi_full) -> dict:
+    """Each target's error when ``Cov(x(t) | everything that crossed the cut)`` is ``Pi_full``."""
     out = {}
     for name, (T, _, lag) in cut.targets.items():
         if lag >= 2:
             out[name] = cut.fixed[name]
         elif lag == 1:
-            out[name] = _trace_quad(T, Pi_full)
+            out[name] = float(np.trace(T @ Pi_full @ T.T))
         else:
-            out[name] = _trace_quad(T @ cut.A, Pi_full) + float(np.trace(T @ cut.Q @ T.T))
+            out[name] = float(np.trace(T @ (cut.A @ Pi_full @ cut.A.T + cut.Q) @ T.T))
     return out
-
-
-def _trace_quad(T, X):
-    """``tr(T X T')`` for a numpy array or a CVXPY expression."""
-    if isinstance(X, np.ndarray):
-        return float(np.trace(T @ X @ T.T))
-    import cvxpy as cp
-
-    return cp.trace(T @ X @ T.T)
 
 
 @dataclass
 class _Source:
-    """The filter's own estimate process, in coordinates of its reachable space.
+    """The filter's own estimate process, whitened on its reachable space.
 
-    ``xhat = U xi``, ``xi+ = Av xi + Bv nu``, ``nu ~ N(0, I_r)``; ``L`` spans the
-    null space of ``F = [Av Bv]`` with orthonormal rows; ``logdet_FF`` is
-    ``log det(F F')``."""
+    ``xhat = U zeta`` with ``Cov(zeta) = I``; ``zeta+ = Aw zeta + Bw nu``,
+    ``nu ~ N(0, I_r)``, so ``F = [Aw Bw]`` has nearly orthonormal rows
+    (``Aw Aw' + Bw Bw' = I`` but for dropped innovation directions);
+    ``logdet_FF = log det(F F')``; the rows of ``L`` are an orthonormal basis
+    of the null space of ``F``. ``full`` is False when the rate term could not be formed (the
+    channel limit is then dropped)."""
 
     U: np.ndarray
-    Av: np.ndarray
-    Wv: np.ndarray
-    Bv: np.ndarray
+    Aw: np.ndarray
+    Ww: np.ndarray
     L: np.ndarray
     logdet_FF: float
+    full: bool
 
 
 def _source(cut: _Cut) -> _Source | None:
@@ -331,27 +329,30 @@ def _source(cut: _Cut) -> _Source | None:
     # Innovation covariance of the estimate: a-priori minus a-posteriori error.
     W = A @ cut.kalman @ A.T + Q - cut.kalman
     W = (W + W.T) / 2
-    Sx = _stationary(A, Q)
-    Sxh = Sx - cut.kalman
-    Sxh = (Sxh + Sxh.T) / 2
-    ev, vec = np.linalg.eigh(Sxh)
-    keep = ev > _RANK_TOL * max(1.0, ev.max(initial=0.0))
-    if not keep.any():
+    Sxh = _stationary(A, Q) - cut.kalman
+    ev, vec = np.linalg.eigh((Sxh + Sxh.T) / 2)
+    top = ev.max(initial=0.0)
+    keep = ev > _RANK_TOL * top
+    if top <= 1e-300 or not keep.any():
         return None
-    U = vec[:, keep]
-    Av, Wv = U.T @ A @ U, U.T @ W @ U
-    Wv = (Wv + Wv.T) / 2
-    ew, wvec = np.linalg.eigh(Wv)
+    # Whitening makes the program well scaled (every direction of the
+    # estimate has unit variance) and leaves every information quantity as
+    # it is (an invertible change of coordinates).
+    U = vec[:, keep] * np.sqrt(ev[keep])
+    Ui = (vec[:, keep] / np.sqrt(ev[keep])).T
+    Aw, Ww = Ui @ A @ U, Ui @ W @ Ui.T
+    Ww = (Ww + Ww.T) / 2
+    ew, wvec = np.linalg.eigh(Ww)
     # Dropping tiny innovation directions lowers the rate a target needs (the
     # rate is monotone in the innovation covariance): the bound stays valid.
-    wk = ew > _RANK_TOL * max(1.0, ew.max(initial=0.0))
-    Bv = wvec[:, wk] * np.sqrt(ew[wk])
-    F = np.hstack([Av, Bv])
-    u, s, vt = np.linalg.svd(F)
+    wk = ew > _RANK_TOL * max(ew.max(initial=0.0), 1e-300)
+    Bw = wvec[:, wk] * np.sqrt(ew[wk])
+    F = np.hstack([Aw, Bw])
     k = U.shape[1]
-    if s.size < k or s[-1] <= _RANK_TOL * max(1.0, s[0]):
-        return _Source(U, Av, Wv, Bv, np.zeros((0, F.shape[1])), float("-inf"))
-    return _Source(U, Av, Wv, Bv, vt[k:], float(2 * np.log(s).sum()))
+    _, sv, vt = np.linalg.svd(F)
+    if sv.size < k or sv[-1] <= 1e-6:
+        return _Source(U, Aw, Ww, np.zeros((0, F.shape[1])), 0.0, False)
+    return _Source(U, Aw, Ww, vt[k:], float(2 * np.log(sv).sum()), True)
 
 
 # ---------------------------------------------------------------------------
@@ -360,10 +361,12 @@ def _source(cut: _Cut) -> _Source | None:
 def _solve(spec: Spec, kind: str, objective_of, extra, max_dim, budgets=True):
     """Build and solve one floor program.
 
-    ``objective_of(errs, powers)`` returns the CVXPY objective from the
-    per-area error expressions and the cut powers; ``extra(errs, powers)``
-    returns more constraints (a list) or the string ``"infeasible"`` with a
-    message when the errors asked for are below the sensor floor."""
+    ``objective_of(errs, powers, cut)`` returns the CVXPY objective from the
+    per-area error expressions and the cut powers; ``extra(errs, powers, cut,
+    prior)`` (``prior``: each area's error when nothing crosses the cut)
+    returns more constraints (a list), ``("infeasible", message)`` when the
+    conditions asked for are out of reach, or ``("exact", value, reason)``
+    when the answer needs no solver."""
     t0 = time.perf_counter()
     if max_dim is not None and spec.world.dim > max_dim:
         return Floor(kind, float("nan"), SKIPPED,
@@ -380,36 +383,41 @@ def _solve(spec: Spec, kind: str, objective_of, extra, max_dim, budgets=True):
     p = {l.id: cp.Variable(l.dim, nonneg=True) for l in noisy}
     powers = {l.id: cp.sum(p[l.id]) for l in noisy}
     cons = []
-    if src is None:
-        # Nothing left to learn beyond the sensors (or unlimited channels):
-        # the channel part of the error is zero.
-        Pi_full = cut.kalman
-        errs = _errors_at(cut, Pi_full)
-        rate = None
-    else:
+    errs = _errors_at(cut, cut.kalman)  # what is left when the channels carry everything
+    rate = None
+    if src is not None:
         k = src.U.shape[1]
-        Pi = cp.Variable((k, k), symmetric=True)
-        Pi_full = cut.kalman + src.U @ Pi @ src.U.T
-        errs = _errors_at(cut, Pi_full)
-        cons += [Pi >> 0, src.Av @ Pi @ src.Av.T + src.Wv - Pi >> 0]
-        if np.isfinite(src.logdet_FF) and src.L.shape[0] > 0:
+        Pi = cp.Variable((k, k), symmetric=True)  # whitened Cov(xhat(t) | cut outputs)
+        for name, (T, _, lag) in cut.targets.items():
+            if lag <= 1:
+                TU = T @ (src.U if lag == 1 else cut.A @ src.U)
+                errs[name] = errs[name] + cp.sum(cp.multiply(TU.T @ TU, Pi))
+        # The posterior cannot exceed the prior one step on.
+        cons += [Pi >> 0, src.Aw @ Pi @ src.Aw.T + src.Ww - Pi >> 0]
+        if src.full:
             r = src.L.shape[0]
             G = cp.Variable((r, r), symmetric=True)
-            D = cp.bmat([[Pi, np.zeros((k, src.Bv.shape[1]))],
-                         [np.zeros((src.Bv.shape[1], k)), np.eye(src.Bv.shape[1])]])
+            D = cp.bmat([[Pi, np.zeros((k, r))], [np.zeros((r, k)), np.eye(r)]])
             cons.append(D - src.L.T @ G @ src.L >> 0)
-            # 2 x (nats per step): log det(prior) - log det(posterior) of the estimate process.
+            # Twice the nats per step the estimate needs, and twice what the links carry.
             need = src.logdet_FF - cp.log_det(G)
             have = sum((cp.sum(cp.log(1 + cp.multiply(p[l.id], 1.0 / np.linalg.eigvalsh(l.noise))))
                         for l in noisy), cp.Constant(0.0))
             cons.append(need <= have)
             rate = have
         else:
-            rate = None
-    more = extra(errs, powers, cut)
-    if isinstance(more, tuple):
+            cut.dropped.append(LOOSE_DEGENERATE)
+    prior = _errors_at(cut, _stationary(cut.A, cut.Q))  # nothing crosses the cut
+    more = extra(errs, powers, cut, prior)
+    if isinstance(more, tuple) and more[0] == INFEASIBLE:
         return Floor(kind, float("nan"), INFEASIBLE, more[1], time.perf_counter() - t0,
                      list(cut.dropped), area_floors=area_floors)
+    if isinstance(more, tuple):
+        # Answered without the solver: at zero energy nothing crosses the
+        # cut, and every area is left with its prior.
+        return Floor(kind, more[1], OPTIMAL, f"lower bound on the {kind}: {more[2]}",
+                     time.perf_counter() - t0, list(cut.dropped), prior, area_floors,
+                     {l.id: 0.0 for l in cut.links}, 0.0)
     cons += more
     for name, ids, total in (cut.budgets if budgets else ()):
         used = [powers[i] for i in ids if i in powers]
@@ -426,18 +434,14 @@ def _solve(spec: Spec, kind: str, objective_of, extra, max_dim, budgets=True):
                      time.perf_counter() - t0, list(cut.dropped), per_area, area_floors,
                      {l.id: 0.0 for l in cut.links}, 0.0 if not cut.noiseless else float("nan"))
     try:
-        prob.solve(solver=cp.CLARABEL, tol_gap_abs=_GAP * 1e-2, tol_gap_rel=_GAP, tol_feas=1e-10,
-                   max_iter=400)
-    except cp.SolverError as exc:
+        value, why = _run(prob)
+    except (cp.SolverError, ValueError, ArithmeticError) as exc:  # reported as a status
         return Floor(kind, float("nan"), FAILED, f"the convex solver failed: {exc}",
                      time.perf_counter() - t0, list(cut.dropped), area_floors=area_floors)
-    if prob.status == cp.INFEASIBLE:
-        return Floor(kind, float("nan"), INFEASIBLE, "no circuit of this spec can meet the conditions asked for",
-                     time.perf_counter() - t0, list(cut.dropped), area_floors=area_floors)
-    if prob.status != cp.OPTIMAL:
-        return Floor(kind, float("nan"), FAILED, f"the convex solver stopped with status '{prob.status}'",
-                     time.perf_counter() - t0, list(cut.dropped), area_floors=area_floors)
-    value = _certified(prob)
+    if why:
+        status = INFEASIBLE if "infeasible" in why else FAILED
+        return Floor(kind, float("nan"), status, why, time.perf_counter() - t0,
+                     list(cut.dropped), area_floors=area_floors)
     per_area = {n: float(np.asarray(e.value if hasattr(e, "value") else e).item()) for n, e in errs.items()}
     cut_powers = {l.id: float(powers[l.id].value) if l.id in powers else 0.0 for l in cut.links}
     bits = float(rate.value) / (2 * math.log(2)) if rate is not None else float("nan")
@@ -445,16 +449,39 @@ def _solve(spec: Spec, kind: str, objective_of, extra, max_dim, budgets=True):
                  list(cut.dropped), per_area, area_floors, cut_powers, bits)
 
 
-def _certified(prob) -> float:
-    """The solver's optimal value lowered by ``_MARGIN``.
+def _run(prob):
+    """Solve with Clarabel; return ``(bound, "")`` or ``(nan, why not)``.
 
-    An interior-point solver stops near the optimum with primal and dual
-    objectives close together but not equal, and its primal value may sit
-    slightly above the true optimum; the margin (100 times the duality gap
-    asked for, measured at about 10 times on the closed forms of the tests)
-    keeps the number a lower bound."""
-    value = float(prob.value)
-    return value - _MARGIN * max(abs(value), 1e-2)
+    The bound is the smaller of the primal and dual objectives, less
+    ``_MARGIN``: by weak duality the dual objective is below the optimum up
+    to the solver's dual residual, which the margin covers. A run that ends
+    "almost solved" is kept when its two objectives agree to ``_ALMOST``."""
+    import cvxpy as cp
+
+    from cvxpy.reductions.solvers.solver_inverse_data import SolverInverseData
+
+    # Solved step by step (as Problem.solve does) to keep Clarabel's own
+    # result, which holds the dual objective.
+    data, chain, inverse = prob.get_problem_data(cp.CLARABEL)
+    opts = {"tol_gap_abs": _GAP * 1e-2, "tol_gap_rel": _GAP, "tol_feas": 1e-10, "max_iter": 400}
+    inverse[-1] = SolverInverseData(inverse[-1], chain.solver, opts)
+    with warnings.catch_warnings():
+        warnings.simplefilter("ignore", UserWarning)
+        raw = chain.solve_via_data(prob, data, False, False, opts)
+        prob.unpack_results(raw, chain, inverse)
+    status = str(raw.status)
+    if status not in ("Solved", "AlmostSolved"):
+        if "Infeasible" in status:
+            return float("nan"), "no circuit of this spec can meet the conditions asked for (infeasible)"
+        return float("nan"), f"the convex solver stopped with status '{status}'"
+    offset = float(prob.value) - float(raw.obj_val)
+    primal, dual = float(raw.obj_val) + offset, float(raw.obj_val_dual) + offset
+    scale = max(abs(primal), 1e-2)
+    if not (math.isfinite(primal) and math.isfinite(dual)) or \
+            (status == "AlmostSolved" and abs(primal - dual) > _ALMOST * scale):
+        return float("nan"), (f"the convex solver stopped short (primal {primal:.9g}, "
+                              f"dual {dual:.9g})")
+    return min(primal, dual) - _MARGIN * scale, ""
 
 
 def _describe(kind, cut: _Cut, src) -> str:
@@ -518,7 +545,7 @@ def information_floor(spec: Spec, max_dim: int | None = None) -> Floor:
         total = sum(cut.targets[n][1] * e for n, e in errs.items())
         return total + sum(cut.prices[i] * P for i, P in powers.items() if cut.prices[i] > 0)
 
-    return _solve(spec, "objective", objective, lambda *a: [], max_dim)
+    return _solve(spec, "objective", objective, lambda *args: [], max_dim)
 
 
 def least_cut_energy(spec: Spec, errors: dict, max_dim: int | None = None) -> Floor:
@@ -556,15 +583,18 @@ def least_cut_energy(spec: Spec, errors: dict, max_dim: int | None = None) -> Fl
                              fix="name areas that track part of the world")
         _check_amount(limit, f"errors['{name}']")
 
-    def extra(errs, powers, cut):
+    def extra(errs, powers, cut, prior):
         cons = []
         for name, limit in errors.items():
             floor = _errors_at(cut, cut.kalman)[name]
             if limit < floor * (1 - 1e-9):
-                return ("infeasible", f"no circuit reaches error {limit:g} in '{name}': "
-                                      f"the sensors alone allow no less than {floor:.6g}")
+                return (INFEASIBLE, f"no circuit reaches error {limit:g} in '{name}': "
+                                    f"the sensors alone allow no less than {floor:.6g}")
             if not isinstance(errs[name], float):
                 cons.append(errs[name] <= limit)
+        if all(prior[name] <= limit for name, limit in errors.items()):
+            # Exact, and the solver would meet a degenerate optimum here.
+            return ("exact", 0.0, "the priors already meet these errors")
         return cons
 
     return _solve(spec, "cut energy", lambda errs, powers, cut: sum(powers.values(), 0.0),
@@ -589,7 +619,10 @@ def least_error(spec: Spec, cut_energy: float, max_dim: int | None = None) -> Fl
     def objective(errs, powers, cut):
         return sum(cut.targets[n][1] * e for n, e in errs.items())
 
-    def extra(errs, powers, cut):
+    def extra(errs, powers, cut, prior):
+        if cut_energy == 0:
+            return ("exact", sum(cut.targets[n][1] * e for n, e in prior.items()),
+                    "with no energy nothing crosses the cut")
         return [sum(powers.values()) <= cut_energy] if powers else []
 
     return _solve(spec, "weighted error", objective, extra, max_dim, budgets=False)
