@@ -45,17 +45,19 @@ _MARGIN = 1e-8
 #: How close primal and dual objectives must be to accept an "almost solved" run.
 _ALMOST = 1e-8
 #: Riccati iterations allowed when the sensor noise is singular (no DARE).
-_RICCATI_ITER = 200_000
+_RICCATI_ITER = 100_000
 
 # Reasons the bound can sit below the best circuit (short, for reports).
 LOOSE_POOLED = "areas pooled: one decoder sees every cut output"
-LOOSE_HOPS = "hops above the cut are free (only sensor links are counted)"
+LOOSE_HOPS = "links between areas treated as perfect (only the cut is counted)"
+LOOSE_FEEDBACK = "noise on predictions into sensors ignored"
+LOOSE_SENSORS = "noisy sensors: the bound lets the sender filter its readings; a sensor has no memory"
 LOOSE_SMOOTH = "smoothing areas (lag >= 2) bounded by the unlimited-channel smoother"
 LOOSE_NOISELESS = "a noiseless cut link: channel limits dropped, sensor floor only"
 LOOSE_PRICES = "prices of links above the cut and activity prices dropped"
-LOOSE_MEMORY = "area sizes (reduced-order filters) and link widths ignored"
+LOOSE_MEMORY = "areas smaller than the world (reduced-order filters) and narrow links treated as unlimited"
 LOOSE_DEGENERATE = "the rate term could not be formed (degenerate estimate process): sensor floor only"
-LOOSE_UNCODED = "coding across time allowed (a circuit sends one linear sample per step)"
+LOOSE_UNCODED = "any code allowed (a circuit sends one linear signal per step)"
 
 
 @dataclass
@@ -202,7 +204,7 @@ def _filter(A, Q, C, R):
             post = prior - prior @ C.T @ np.linalg.pinv(C @ prior @ C.T + R, hermitian=True) @ C @ prior
             nxt = A @ post @ A.T + Q
             nxt = (nxt + nxt.T) / 2
-            done = np.abs(nxt - prior).max() <= 1e-15 * max(1.0, np.abs(prior).max())
+            done = np.abs(nxt - prior).max() <= 1e-14 * max(1e-300, np.abs(prior).max())
             prior = nxt
             if done:
                 break
@@ -277,8 +279,12 @@ def _read(spec: Spec) -> _Cut:
     dropped = [LOOSE_UNCODED]
     if len([t for t in targets.values() if t[1] > 0]) > 1:
         dropped.append(LOOSE_POOLED)
-    if any(not (l.kind == RESIDUAL and spec.is_sensor(l.source)) for l in spec.links):
+    if any(not spec.is_sensor(l.source) and not spec.is_sensor(l.target) for l in spec.links):
         dropped.append(LOOSE_HOPS)
+    if any(spec.is_sensor(l.target) and np.abs(l.noise).max(initial=0.0) > 0 for l in spec.links):
+        dropped.append(LOOSE_FEEDBACK)
+    if any(np.abs(s.noise).max(initial=0.0) > 0 for s in sensors):
+        dropped.append(LOOSE_SENSORS)
     if any(t[2] >= 2 and t[1] > 0 for t in targets.values()):
         dropped.append(LOOSE_SMOOTH)
     if noiseless:

@@ -222,20 +222,36 @@ def test_kalman_limit_matches_python_control():
     assert information_floor(kalman_spec(0)).objective == pytest.approx(np.trace(P), rel=1e-8)
 
 
-def test_smoothing_floor_matches_gaussian_conditioning():
-    # Lag 2: estimate x(t-2) from sensors up to t-1. Reference: condition the
-    # stationary joint Gaussian of (x(t-2), y(t-W..t-1)) directly over a long
-    # window (Schur complement; common practice, no source).
-    spec = kalman_spec(2)
-    W = 60
+def conditioned_error(R, back, window=60):
+    """tr Cov(x(t - back) | y(t - window + 1 .. t)) (``back = -1``: one step ahead) for the world (A2, Q2) read
+    by C2 with noise R, by conditioning the stationary joint Gaussian directly
+    (Schur complement; common practice, no source)."""
     Sx = sla.solve_discrete_lyapunov(A2, Q2)
     cov_x = lambda i, j: (np.linalg.matrix_power(A2, i - j) @ Sx if i >= j
                           else Sx @ np.linalg.matrix_power(A2.T, j - i))
-    times = list(range(W))  # y at times 0..W-1, target x at time W-2
-    Syy = np.block([[C2 @ cov_x(i, j) @ C2.T + (R2 if i == j else 0) for j in times] for i in times])
-    Sxy = np.hstack([cov_x(W - 2, j) @ C2.T for j in times])
-    expected = np.trace(Sx - Sxy @ np.linalg.solve(Syy, Sxy.T))
-    assert information_floor(spec).objective == pytest.approx(expected, rel=1e-8)
+    times = range(window)
+    Syy = np.block([[C2 @ cov_x(i, j) @ C2.T + (R if i == j else 0 * R) for j in times] for i in times])
+    target = window - 1 - back
+    Sxy = np.hstack([cov_x(target, j) @ C2.T for j in times])
+    return np.trace(Sx - Sxy @ np.linalg.pinv(Syy, hermitian=True) @ Sxy.T)
+
+
+def test_smoothing_floor_matches_gaussian_conditioning():
+    # Lag 2: estimate x(t-2) from sensors up to t-1 (one step of smoothing).
+    assert information_floor(kalman_spec(2)).objective == pytest.approx(conditioned_error(R2, 1), rel=1e-8)
+
+
+def test_noiseless_sensor_floor_matches_gaussian_conditioning():
+    # A noiseless sensor of one mixture of a 2-D world: no DARE (R = 0); the
+    # filter error still follows from conditioning (lag 1) and one step on (lag 0).
+    zero = np.zeros((1, 1))
+    spec = dataclasses.replace(kalman_spec(1), sensors=(dataclasses.replace(kalman_spec(1).sensors[0],
+                                                                            noise=zero),))
+    post = conditioned_error(zero, 0)
+    assert information_floor(spec).objective == pytest.approx(post, rel=1e-7)
+    spec0 = dataclasses.replace(spec, areas=(dataclasses.replace(spec.areas[0], lag=0),))
+    prior = conditioned_error(zero, -1)  # x(t) from readings up to t - 1
+    assert information_floor(spec0).objective == pytest.approx(prior, rel=1e-7)
 
 
 # ---------------------------------------------------------------------------
