@@ -136,7 +136,7 @@ def test_vector_link_water_filling_against_reverse_water_filling():
     # Two independent memoryless sources over one vector link with rotated
     # noise: capacity by water-filling on the noise eigenvalues, distortion by
     # reverse water-filling on the variances (Cover & Thomas, Elements of
-    # Information Theory, 2006, Thm 9.4.1 and Thm 10.3.3).
+    # Information Theory, 2006, Sec. 9.4 and Thm 10.3.3).
     var, nev, B = np.array([3.0, 0.3]), np.array([0.1, 1.0]), 0.8
     R = np.array([[math.cos(0.4), -math.sin(0.4)], [math.sin(0.4), math.cos(0.4)]])
     noise = R @ np.diag(nev) @ R.T
@@ -161,7 +161,7 @@ budgets: [{{name: b, links: all, total: {B}}}]
 
 
 def test_link_capacity_closed_form():
-    # Water-filling (Cover & Thomas 2006, Thm 9.4.1) on two parallel channels.
+    # Water-filling (Cover & Thomas 2006, Sec. 9.4) on two parallel channels.
     n1, n2 = 0.2, 1.0
     for P in (0.3, 0.8, 5.0):
         if P <= n2 - n1:
