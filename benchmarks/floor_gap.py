@@ -24,7 +24,8 @@ import sys
 import time
 from pathlib import Path
 
-sys.path.insert(0, os.path.dirname(os.path.abspath(__file__)))
+# Measure the checkout this script lives in, not an installed copy.
+sys.path.insert(0, os.path.dirname(os.path.dirname(os.path.abspath(__file__))))
 
 from _env import blas_header, code_version  # noqa: E402
 
