@@ -399,11 +399,12 @@ def _solve(spec: Spec, kind: str, objective_of, extra, max_dim, budgets=True):
                 TU = T @ (src.U if lag == 1 else cut.A @ src.U)
                 errs[name] = errs[name] + cp.sum(cp.multiply(TU.T @ TU, Pi))
         # The posterior cannot exceed the prior one step on.
-        cons += [Pi >> 0, src.Aw @ Pi @ src.Aw.T + src.Ww - Pi >> 0]
+        cons.append(src.Aw @ Pi @ src.Aw.T + src.Ww - Pi >> 0)
         if src.full:
             r = src.L.shape[0]
             G = cp.Variable((r, r), symmetric=True)
             D = cp.bmat([[Pi, np.zeros((k, r))], [np.zeros((r, k)), np.eye(r)]])
+            # With Gamma > 0 (the domain of log_det) this also keeps Pi >= 0.
             cons.append(D - src.L.T @ G @ src.L >> 0)
             # Twice the nats per step the estimate needs, and twice what the links carry.
             need = src.logdet_FF - cp.log_det(G)
@@ -412,6 +413,7 @@ def _solve(spec: Spec, kind: str, objective_of, extra, max_dim, budgets=True):
             cons.append(need <= have)
             rate = have
         else:
+            cons.append(Pi >> 0)
             cut.dropped.append(LOOSE_DEGENERATE)
     prior = _errors_at(cut, _stationary(cut.A, cut.Q))  # nothing crosses the cut
     more = extra(errs, powers, cut, prior)
@@ -487,7 +489,8 @@ def _run(prob):
             (status == "AlmostSolved" and abs(primal - dual) > _ALMOST * scale):
         return float("nan"), (f"the convex solver stopped short (primal {primal:.9g}, "
                               f"dual {dual:.9g})")
-    return min(primal, dual) - _MARGIN * scale, ""
+    # Every term of J is >= 0, so a floor below zero says nothing more than 0.
+    return max(0.0, min(primal, dual) - _MARGIN * scale), ""
 
 
 def _describe(kind, cut: _Cut, src) -> str:
