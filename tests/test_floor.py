@@ -105,7 +105,7 @@ def test_designed_single_loop_meets_the_bound():
     floor = information_floor(spec)
     res = design(spec)
     assert res.objective >= floor.objective
-    assert floor.gap(res.objective) < 1e-4
+    assert floor.gap(res.objective) < 1e-6   # measured 1.0e-8: the certification margin
 
 
 def test_without_prediction_the_design_stays_above_the_bound():
@@ -128,7 +128,7 @@ def test_uncoded_gaussian_limit_is_attained():
     expected = s2 / (1 + B / N)
     assert floor.objective == pytest.approx(expected, rel=1e-6)
     res = design(spec, FAST)
-    assert res.objective == pytest.approx(floor.objective, rel=1e-5)
+    assert res.objective == pytest.approx(floor.objective, rel=1e-6)
     assert res.objective >= floor.objective
 
 
