@@ -49,10 +49,10 @@ _RICCATI_ITER = 100_000
 
 # Reasons the bound can sit below the best circuit (short, for reports).
 LOOSE_POOLED = "areas pooled: one decoder sees every cut output"
-LOOSE_HOPS = "links between areas treated as perfect (only the cut is counted)"
+LOOSE_HOPS = "links between areas treated as perfect (only the cut and their delay are counted)"
 LOOSE_FEEDBACK = "noise on predictions into sensors ignored"
 LOOSE_SENSORS = "noisy sensors: the bound lets the sender filter its readings; a sensor has no memory"
-LOOSE_SMOOTH = "smoothing areas (lag >= 2) bounded by the unlimited-channel smoother"
+LOOSE_SMOOTH = "smoothing areas (lag above their hops from a sensor) bounded by the unlimited-channel smoother"
 LOOSE_NOISELESS = "a noiseless cut link: channel limits dropped, sensor floor only"
 LOOSE_PRICES = "prices of links above the cut and activity prices dropped"
 LOOSE_MEMORY = "areas smaller than the world (reduced-order filters) and narrow links treated as unlimited"
@@ -235,13 +235,42 @@ def _smoothed(A, Q, C, R, back: int):
 # the problem, read from a spec
 
 @dataclass
+class _Target:
+    """An area's target rows, weight and how far its estimate reaches.
+
+    ``ahead`` = hops from the nearest sensor minus the lag: the area's
+    estimate of ``x(t - lag)`` is made from cut outputs up to ``t - hops``,
+    so ``ahead > 0`` predicts that many steps, ``0`` filters and ``< 0``
+    smooths. ``None``: no path from any sensor reaches the area."""
+
+    T: np.ndarray
+    weight: float
+    ahead: int | None
+
+
+def _hops(spec: Spec) -> dict:
+    """Fewest links on a path from any sensor to each area (absent: unreachable)."""
+    out = {s.name: 0 for s in spec.sensors}
+    frontier = list(out)
+    while frontier:
+        nxt = []
+        for node in frontier:
+            for l in spec.links:
+                if l.source == node and l.target not in out:
+                    out[l.target] = out[node] + 1
+                    nxt.append(l.target)
+        frontier = nxt
+    return {a.name: out[a.name] for a in spec.areas if a.name in out}
+
+
+@dataclass
 class _Cut:
     """What the floor needs from a spec."""
 
     A: np.ndarray
     Q: np.ndarray
     kalman: np.ndarray          # Cov(x(t) | all cut sensors up to t)
-    targets: dict               # area -> (T, weight, lag)
+    targets: dict               # area -> _Target
     fixed: dict                 # area -> error floor that does not depend on the channels
     links: list                 # cut links (noisy ones carry a rate)
     noiseless: list             # ids of cut links with unlimited capacity
@@ -264,20 +293,24 @@ def _read(spec: Spec) -> _Cut:
         C, R = np.zeros((0, world.dim)), np.zeros((0, 0))
     _, post = _filter(A, Q, C, R)
     targets, fixed = {}, {}
+    hops = _hops(spec)
     for a in spec.areas:
         if not a.has_target:
             continue
         T = world.selector(a.tracks)
-        targets[a.name] = (T, a.weight, a.lag)
-        if a.lag >= 2:
-            fixed[a.name] = float(np.trace(T @ _smoothed(A, Q, C, R, a.lag - 1) @ T.T))
+        ahead = hops[a.name] - a.lag if a.name in hops else None
+        targets[a.name] = _Target(T, a.weight, ahead)
+        if ahead is None:
+            fixed[a.name] = float(np.trace(T @ _stationary(A, Q) @ T.T))
+        elif ahead < 0:
+            fixed[a.name] = float(np.trace(T @ _smoothed(A, Q, C, R, -ahead) @ T.T))
     noiseless = [l.id for l in cut
                  if np.linalg.eigvalsh(l.noise)[0] <= _RANK_TOL * max(1.0, np.abs(l.noise).max())]
     ids = {l.id for l in cut}
     budgets = [(b.name, [i for i in b.links if i in ids], b.total) for b in spec.budgets]
     prices = {l.id: l.price for l in cut}
     dropped = [LOOSE_UNCODED]
-    if len([t for t in targets.values() if t[1] > 0]) > 1:
+    if len([t for t in targets.values() if t.weight > 0]) > 1:
         dropped.append(LOOSE_POOLED)
     if any(not spec.is_sensor(l.source) and not spec.is_sensor(l.target) for l in spec.links):
         dropped.append(LOOSE_HOPS)
@@ -285,7 +318,7 @@ def _read(spec: Spec) -> _Cut:
         dropped.append(LOOSE_FEEDBACK)
     if any(np.abs(s.noise).max(initial=0.0) > 0 for s in sensors):
         dropped.append(LOOSE_SENSORS)
-    if any(t[2] >= 2 and t[1] > 0 for t in targets.values()):
+    if any(t.ahead is not None and t.ahead < 0 and t.weight > 0 for t in targets.values()):
         dropped.append(LOOSE_SMOOTH)
     if noiseless:
         dropped.append(LOOSE_NOISELESS)
@@ -298,16 +331,24 @@ def _read(spec: Spec) -> _Cut:
 
 
 def _errors_at(cut: _Cut, Pi_full) -> dict:
-    """Each target's error when ``Cov(x(t) | everything that crossed the cut)`` is ``Pi_full``."""
+    """Each target's error when ``Cov(x(t) | cut outputs up to t)`` is ``Pi_full``."""
     out = {}
-    for name, (T, _, lag) in cut.targets.items():
-        if lag >= 2:
+    for name, t in cut.targets.items():
+        if t.ahead is None or t.ahead < 0:
             out[name] = cut.fixed[name]
-        elif lag == 1:
-            out[name] = float(np.trace(T @ Pi_full @ T.T))
         else:
-            out[name] = float(np.trace(T @ (cut.A @ Pi_full @ cut.A.T + cut.Q) @ T.T))
+            Ak, Qk = _ahead(cut, t.ahead)
+            out[name] = float(np.trace(t.T @ (Ak @ Pi_full @ Ak.T + Qk) @ t.T.T))
     return out
+
+
+def _ahead(cut: _Cut, k: int):
+    """``A^k`` and the noise ``sum_{j<k} A^j Q A'^j`` gathered over ``k`` steps."""
+    Ak, Qk = np.eye(cut.A.shape[0]), np.zeros_like(cut.Q)
+    for _ in range(k):
+        Qk = cut.A @ Qk @ cut.A.T + cut.Q
+        Ak = cut.A @ Ak
+    return Ak, Qk
 
 
 @dataclass
@@ -379,9 +420,7 @@ def _solve(spec: Spec, kind: str, objective_of, extra, max_dim, budgets=True):
                      f"skipped: the world has {spec.world.dim} dimensions, more than the "
                      f"limit of {max_dim}", time.perf_counter() - t0)
     cut = _read(spec)
-    area_floors = {}
-    for name, (T, _, lag) in cut.targets.items():
-        area_floors[name] = _errors_at(cut, cut.kalman)[name]
+    area_floors = _errors_at(cut, cut.kalman)
     src = None if cut.noiseless else _source(cut)
     import cvxpy as cp
 
@@ -394,9 +433,9 @@ def _solve(spec: Spec, kind: str, objective_of, extra, max_dim, budgets=True):
     if src is not None:
         k = src.U.shape[1]
         Pi = cp.Variable((k, k), symmetric=True)  # whitened Cov(xhat(t) | cut outputs)
-        for name, (T, _, lag) in cut.targets.items():
-            if lag <= 1:
-                TU = T @ (src.U if lag == 1 else cut.A @ src.U)
+        for name, t in cut.targets.items():
+            if t.ahead is not None and t.ahead >= 0:
+                TU = t.T @ _ahead(cut, t.ahead)[0] @ src.U
                 errs[name] = errs[name] + cp.sum(cp.multiply(TU.T @ TU, Pi))
         # The posterior cannot exceed the prior one step on.
         cons.append(src.Aw @ Pi @ src.Aw.T + src.Ww - Pi >> 0)
@@ -551,7 +590,7 @@ def information_floor(spec: Spec, max_dim: int | None = None) -> Floor:
     True
     """
     def objective(errs, powers, cut):
-        total = sum(cut.targets[n][1] * e for n, e in errs.items())
+        total = sum(cut.targets[n].weight * e for n, e in errs.items())
         return total + sum(cut.prices[i] * P for i, P in powers.items() if cut.prices[i] > 0)
 
     return _solve(spec, "objective", objective, lambda *args: [], max_dim)
@@ -626,11 +665,11 @@ def least_error(spec: Spec, cut_energy: float, max_dim: int | None = None) -> Fl
     _check_amount(cut_energy, "cut_energy")
 
     def objective(errs, powers, cut):
-        return sum(cut.targets[n][1] * e for n, e in errs.items())
+        return sum(cut.targets[n].weight * e for n, e in errs.items())
 
     def extra(errs, powers, cut, prior):
         if cut_energy == 0:
-            return ("exact", sum(cut.targets[n][1] * e for n, e in prior.items()),
+            return ("exact", sum(cut.targets[n].weight * e for n, e in prior.items()),
                     "with no energy nothing crosses the cut")
         return [sum(powers.values()) <= cut_energy] if powers else []
 

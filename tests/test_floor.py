@@ -254,6 +254,37 @@ def test_noiseless_sensor_floor_matches_gaussian_conditioning():
     assert information_floor(spec0).objective == pytest.approx(prior, rel=1e-7)
 
 
+def test_each_hop_costs_one_step_of_delay():
+    # An area fed through a relay sees the readings one step later: with
+    # noiseless free links, lag 0 is the two-step prediction A P A' + Q, lag 1
+    # the one-step one P (P: a-priori DARE covariance, scipy), lag 2 the filter.
+    P = sla.solve_discrete_are(A2.T, C2.T, Q2, R2)
+    post = P - P @ C2.T @ np.linalg.solve(C2 @ P @ C2.T + R2, C2 @ P)
+    expected = {0: np.trace(A2 @ P @ A2.T + Q2), 1: np.trace(P), 2: np.trace(post)}
+    for lag, value in expected.items():
+        spec = parse_spec(f"""
+spec: 1
+world:
+  states:
+    x: {{dim: 2, dynamics: {A2.tolist()}, noise: {Q2.tolist()}}}
+sensors:
+  s: {{observes: {{x: {C2.tolist()}}}, noise: {R2.tolist()}}}
+areas:
+  relay: {{dim: 2}}
+  top: {{tracks: x, lag: {lag}}}
+links:
+  - {{from: s, to: relay, kind: residual}}
+  - {{from: relay, to: s, kind: prediction}}
+  - {{from: relay, to: top, kind: residual}}
+""")
+        floor = information_floor(spec)
+        assert floor.objective == pytest.approx(value, rel=1e-8)
+        if lag == 0:
+            # The relay can hold the one-step prediction and pass it on: attained.
+            res = design(spec, FAST)
+            assert floor.objective <= res.objective <= floor.objective * (1 + 1e-6)
+
+
 # ---------------------------------------------------------------------------
 # never above an achieved objective
 
