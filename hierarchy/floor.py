@@ -17,6 +17,7 @@ Public entry points: :func:`information_floor` (a bound on the objective J),
 
 from __future__ import annotations
 
+import dataclasses
 import math
 import time
 import warnings
@@ -42,19 +43,24 @@ _GAP = 1e-10
 #: Relative margin taken off the solver's value: its primal value can sit
 #: above the true optimum by its residuals, about 1e-9 with exponential cones.
 _MARGIN = 1e-8
-#: How close primal and dual objectives must be to accept an "almost solved" run.
-_ALMOST = 1e-8
+#: (relative gap, feasibility) a run must meet at least, and its margin.
+_REDUCED = (1e-7, 1e-7)
+_REDUCED_MARGIN = 1e-6
+#: Largest world for which ``information_floor`` adds the areas' own cuts by default.
+AREA_CUTS_DIM = 8
 #: Riccati iterations allowed when the sensor noise is singular (no DARE).
 _RICCATI_ITER = 100_000
 
 # Reasons the bound can sit below the best circuit (short, for reports).
 LOOSE_POOLED = "areas pooled: one decoder sees every cut output"
+LOOSE_POOLED_CUTS = "areas pooled at the sensors (each area's own in-links are counted too)"
 LOOSE_HOPS = "links between areas treated as perfect (only the cut and their delay are counted)"
 LOOSE_FEEDBACK = "noise on predictions into sensors ignored"
 LOOSE_SENSORS = "noisy sensors: the bound lets the sender filter its readings; a sensor has no memory"
 LOOSE_SMOOTH = "smoothing areas (lag above their hops from a sensor) bounded by the unlimited-channel smoother"
-LOOSE_NOISELESS = "a noiseless cut link: channel limits dropped, sensor floor only"
-LOOSE_PRICES = "prices of links above the cut and activity prices dropped"
+LOOSE_NOISELESS = "a noiseless link out of a sensor: no channel limit at the sensors"
+LOOSE_PRICES = "prices of links counted nowhere dropped"
+LOOSE_ACTIVITY = "activity prices dropped"
 LOOSE_MEMORY = "areas smaller than the world (reduced-order filters) and narrow links treated as unlimited"
 LOOSE_DEGENERATE = "the rate term could not be formed (degenerate estimate process): sensor floor only"
 LOOSE_UNCODED = "any code allowed (a circuit sends one linear signal per step)"
@@ -274,8 +280,9 @@ class _Cut:
     fixed: dict                 # area -> error floor that does not depend on the channels
     links: list                 # cut links (noisy ones carry a rate)
     noiseless: list             # ids of cut links with unlimited capacity
-    budgets: list               # (name, [cut link ids], total)
-    prices: dict                # cut link id -> price
+    budgets: list               # (name, [link ids], total)
+    prices: dict                # link id -> price
+    hops: dict                  # area -> fewest links from a sensor
     dropped: list               # loose reasons
 
 
@@ -307,8 +314,8 @@ def _read(spec: Spec) -> _Cut:
     noiseless = [l.id for l in cut
                  if np.linalg.eigvalsh(l.noise)[0] <= _RANK_TOL * max(1.0, np.abs(l.noise).max())]
     ids = {l.id for l in cut}
-    budgets = [(b.name, [i for i in b.links if i in ids], b.total) for b in spec.budgets]
-    prices = {l.id: l.price for l in cut}
+    budgets = [(b.name, list(b.links), b.total) for b in spec.budgets]
+    prices = {l.id: l.price for l in spec.links}
     dropped = [LOOSE_UNCODED]
     if len([t for t in targets.values() if t.weight > 0]) > 1:
         dropped.append(LOOSE_POOLED)
@@ -322,12 +329,13 @@ def _read(spec: Spec) -> _Cut:
         dropped.append(LOOSE_SMOOTH)
     if noiseless:
         dropped.append(LOOSE_NOISELESS)
-    if any(l.price > 0 for l in spec.links if l.id not in ids) or any(a.activity_price > 0 for a in spec.areas):
-        dropped.append(LOOSE_PRICES)
+    if any(a.activity_price > 0 for a in spec.areas):
+        dropped.append(LOOSE_ACTIVITY)
     if any(a.has_target and a.dim < world.dim for a in spec.areas) or \
             any(l.dim < spec.node_dim(l.source) for l in cut):
         dropped.append(LOOSE_MEMORY)
-    return _Cut(A, Q, (post + post.T) / 2, targets, fixed, cut, noiseless, budgets, prices, dropped)
+    return _Cut(A, Q, (post + post.T) / 2, targets, fixed, cut, noiseless, budgets, prices, hops,
+                dropped)
 
 
 def _errors_at(cut: _Cut, Pi_full) -> dict:
@@ -405,7 +413,55 @@ def _source(cut: _Cut) -> _Source | None:
 # ---------------------------------------------------------------------------
 # the convex program
 
-def _solve(spec: Spec, kind: str, objective_of, extra, max_dim, budgets=True):
+def _decoder(cp, src: _Source):
+    """A decoder's whitened error covariance ``Pi`` of the estimate process,
+    its constraints and the rate it needs (twice nats per step, convex)."""
+    k = src.U.shape[1]
+    Pi = cp.Variable((k, k), symmetric=True)
+    # The posterior cannot exceed the prior one step on.
+    cons = [src.Aw @ Pi @ src.Aw.T + src.Ww - Pi >> 0]
+    if not src.full:
+        return Pi, cons + [Pi >> 0], None
+    r = src.L.shape[0]
+    G = cp.Variable((r, r), symmetric=True)
+    D = cp.bmat([[Pi, np.zeros((k, r))], [np.zeros((r, k)), np.eye(r)]])
+    # With Gamma > 0 (the domain of log_det) this also keeps Pi >= 0.
+    cons.append(D - src.L.T @ G @ src.L >> 0)
+    return Pi, cons, src.logdet_FF - cp.log_det(G)
+
+
+def _error_term(cp, cut: _Cut, src: _Source, T, ahead: int, Pi):
+    """The channel part of ``tr(T Cov T')`` for an estimate ``ahead`` steps on from ``Pi``."""
+    TU = T @ _ahead(cut, ahead)[0] @ src.U
+    return cp.sum(cp.multiply(TU.T @ TU, Pi))
+
+
+def _area_cuts(cp, spec: Spec, cut: _Cut, src: _Source, Pi, errs: dict, capacity) -> list:
+    """One more decoder per weighted target area: what enters the area.
+
+    Everything area ``a`` knows came in on its own links. What entered by
+    step ``t`` was sent from states that knew the readings only up to
+    ``t - hops + 1``, so this decoder estimates the delayed estimate
+    ``xhat(t - hops + 1)``, a Gauss-Markov process like ``xhat`` itself: the
+    same rate-distortion inequality holds with the capacity of the area's
+    own links, and its error can be no smaller than the sensor decoder's
+    (``Pa >= Pi``). Replaces ``errs[a]`` by the tighter term; returns the
+    constraints."""
+    cons = []
+    for name, t in cut.targets.items():
+        into = [l for l in spec.links if l.target == name]
+        noiseless = any(np.linalg.eigvalsh(l.noise)[0] <= _RANK_TOL * max(1.0, np.abs(l.noise).max())
+                        for l in into)
+        same = {l.id for l in into} == {l.id for l in cut.links}  # nothing new: the sensor decoder
+        if t.weight <= 0 or t.ahead is None or t.ahead < 0 or noiseless or not into or same:
+            continue
+        Pa, more, need = _decoder(cp, src)
+        cons += more + [need <= capacity(into), Pa - Pi >> 0]
+        errs[name] = _errors_at(cut, cut.kalman)[name] + _error_term(cp, cut, src, t.T, t.ahead, Pa)
+    return cons
+
+
+def _solve(spec: Spec, kind: str, objective_of, extra, max_dim, budgets=True, area_cuts=False):
     """Build and solve one floor program.
 
     ``objective_of(errs, powers, cut)`` returns the CVXPY objective from the
@@ -421,39 +477,46 @@ def _solve(spec: Spec, kind: str, objective_of, extra, max_dim, budgets=True):
                      f"limit of {max_dim}", time.perf_counter() - t0)
     cut = _read(spec)
     area_floors = _errors_at(cut, cut.kalman)
-    src = None if cut.noiseless else _source(cut)
+    src = _source(cut)
     import cvxpy as cp
 
+    p = {}  # link id -> powers per noise eigen-direction
+
+    def capacity(links):
+        """Twice the nats per step the links carry (concave in their powers)."""
+        for l in links:
+            if l.id not in p:
+                p[l.id] = cp.Variable(l.dim, nonneg=True)
+        return sum((cp.sum(cp.log(1 + cp.multiply(p[l.id], 1.0 / np.linalg.eigvalsh(l.noise))))
+                    for l in links), cp.Constant(0.0))
+
     noisy = [l for l in cut.links if l.id not in cut.noiseless]
-    p = {l.id: cp.Variable(l.dim, nonneg=True) for l in noisy}
-    powers = {l.id: cp.sum(p[l.id]) for l in noisy}
     cons = []
     errs = _errors_at(cut, cut.kalman)  # what is left when the channels carry everything
     rate = None
-    if src is not None:
-        k = src.U.shape[1]
-        Pi = cp.Variable((k, k), symmetric=True)  # whitened Cov(xhat(t) | cut outputs)
-        for name, t in cut.targets.items():
-            if t.ahead is not None and t.ahead >= 0:
-                TU = t.T @ _ahead(cut, t.ahead)[0] @ src.U
-                errs[name] = errs[name] + cp.sum(cp.multiply(TU.T @ TU, Pi))
-        # The posterior cannot exceed the prior one step on.
-        cons.append(src.Aw @ Pi @ src.Aw.T + src.Ww - Pi >> 0)
-        if src.full:
-            r = src.L.shape[0]
-            G = cp.Variable((r, r), symmetric=True)
-            D = cp.bmat([[Pi, np.zeros((k, r))], [np.zeros((r, k)), np.eye(r)]])
-            # With Gamma > 0 (the domain of log_det) this also keeps Pi >= 0.
-            cons.append(D - src.L.T @ G @ src.L >> 0)
-            # Twice the nats per step the estimate needs, and twice what the links carry.
-            need = src.logdet_FF - cp.log_det(G)
-            have = sum((cp.sum(cp.log(1 + cp.multiply(p[l.id], 1.0 / np.linalg.eigvalsh(l.noise))))
-                        for l in noisy), cp.Constant(0.0))
-            cons.append(need <= have)
-            rate = have
+    if src is not None and not src.full:
+        cut.dropped.append(LOOSE_DEGENERATE)
+    elif src is not None:
+        if cut.noiseless:
+            # Unlimited capacity at the sensors: their decoder loses nothing.
+            Pi = np.zeros((src.U.shape[1],) * 2)
         else:
-            cons.append(Pi >> 0)
-            cut.dropped.append(LOOSE_DEGENERATE)
+            Pi, more, need = _decoder(cp, src)
+            rate = capacity(noisy)
+            cons += more + [need <= rate]
+            for name, t in cut.targets.items():
+                if t.ahead is not None and t.ahead >= 0:
+                    errs[name] = errs[name] + _error_term(cp, cut, src, t.T, t.ahead, Pi)
+        if area_cuts:
+            cons += _area_cuts(cp, spec, cut, src, Pi, errs, capacity)
+    for l in noisy:  # every noisy cut link has a power, even where no rate is counted
+        if l.id not in p:
+            p[l.id] = cp.Variable(l.dim, nonneg=True)
+    powers = {i: cp.sum(v) for i, v in p.items()}
+    if any(price > 0 and i not in powers for i, price in cut.prices.items()):
+        cut.dropped.append(LOOSE_PRICES)
+    if LOOSE_POOLED in cut.dropped and area_cuts and src is not None and src.full:
+        cut.dropped[cut.dropped.index(LOOSE_POOLED)] = LOOSE_POOLED_CUTS
     prior = _errors_at(cut, _stationary(cut.A, cut.Q))  # nothing crosses the cut
     more = extra(errs, powers, cut, prior)
     if isinstance(more, tuple) and more[0] == INFEASIBLE:
@@ -481,55 +544,60 @@ def _solve(spec: Spec, kind: str, objective_of, extra, max_dim, budgets=True):
                      time.perf_counter() - t0, list(cut.dropped), per_area, area_floors,
                      {l.id: 0.0 for l in cut.links}, 0.0 if not cut.noiseless else float("nan"))
     try:
-        value, why = _run(prob)
+        value, note = _run(prob)
     except (cp.SolverError, ValueError, ArithmeticError) as exc:  # reported as a status
         return Floor(kind, float("nan"), FAILED, f"the convex solver failed: {exc}",
                      time.perf_counter() - t0, list(cut.dropped), area_floors=area_floors)
-    if why:
-        status = INFEASIBLE if "infeasible" in why else FAILED
-        return Floor(kind, float("nan"), status, why, time.perf_counter() - t0,
+    if math.isnan(value):
+        status = INFEASIBLE if "infeasible" in note else FAILED
+        return Floor(kind, float("nan"), status, note, time.perf_counter() - t0,
                      list(cut.dropped), area_floors=area_floors)
     per_area = {n: float(np.asarray(e.value if hasattr(e, "value") else e).item()) for n, e in errs.items()}
-    cut_powers = {l.id: float(powers[l.id].value) if l.id in powers else 0.0 for l in cut.links}
+    cut_powers = {l.id: 0.0 for l in cut.links}  # noiseless cut links need no power
+    cut_powers.update({i: float(P.value) for i, P in powers.items()})
     bits = float(rate.value) / (2 * math.log(2)) if rate is not None else float("nan")
-    return Floor(kind, value, OPTIMAL, _describe(kind, cut, src), time.perf_counter() - t0,
+    return Floor(kind, value, OPTIMAL, _describe(kind, cut, src) + note, time.perf_counter() - t0,
                  list(cut.dropped), per_area, area_floors, cut_powers, bits)
 
 
 def _run(prob):
-    """Solve with Clarabel; return ``(bound, "")`` or ``(nan, why not)``.
+    """Solve with Clarabel; return ``(bound, note)`` or ``(nan, why not)`` with ``bound`` nan.
 
-    The bound is the smaller of the primal and dual objectives, less
-    ``_MARGIN``: by weak duality the dual objective is below the optimum up
-    to the solver's dual residual, which the margin covers. A run that ends
-    "almost solved" is kept when its two objectives agree to ``_ALMOST``."""
+    The bound is the smaller of the primal and dual objectives, less a
+    margin: by weak duality the dual objective is below the optimum up to
+    the solver's dual residual, which the margin covers. A run that meets
+    the tight tolerances gets ``_MARGIN``; one that stalls short of them (as
+    exponential cones can, near 1e-9) but meets ``_REDUCED`` gets the
+    larger ``_REDUCED_MARGIN`` and says so."""
     import cvxpy as cp
-
     from cvxpy.reductions.solvers.solver_inverse_data import SolverInverseData
 
     # Solved step by step (as Problem.solve does) to keep Clarabel's own
     # result, which holds the dual objective.
     data, chain, inverse = prob.get_problem_data(cp.CLARABEL)
-    opts = {"tol_gap_abs": _GAP * 1e-2, "tol_gap_rel": _GAP, "tol_feas": 1e-10, "max_iter": 400}
+    gap, feas = _REDUCED
+    opts = {"tol_gap_abs": _GAP * 1e-2, "tol_gap_rel": _GAP, "tol_feas": 1e-10, "max_iter": 400,
+            "reduced_tol_gap_abs": gap * 1e-2, "reduced_tol_gap_rel": gap, "reduced_tol_feas": feas}
     inverse[-1] = SolverInverseData(inverse[-1], chain.solver, opts)
     with warnings.catch_warnings():
         warnings.simplefilter("ignore", UserWarning)
         raw = chain.solve_via_data(prob, data, False, False, opts)
+        status = str(raw.status)
+        if status not in ("Solved", "AlmostSolved"):
+            if "Infeasible" in status:
+                return float("nan"), "no circuit of this spec can meet the conditions asked for (infeasible)"
+            return float("nan"), f"the convex solver stopped with status '{status}'"
         prob.unpack_results(raw, chain, inverse)
-    status = str(raw.status)
-    if status not in ("Solved", "AlmostSolved"):
-        if "Infeasible" in status:
-            return float("nan"), "no circuit of this spec can meet the conditions asked for (infeasible)"
-        return float("nan"), f"the convex solver stopped with status '{status}'"
     offset = float(prob.value) - float(raw.obj_val)
     primal, dual = float(raw.obj_val) + offset, float(raw.obj_val_dual) + offset
+    if not (math.isfinite(primal) and math.isfinite(dual)):
+        return float("nan"), "the convex solver returned no finite objective"
     scale = max(abs(primal), 1e-2)
-    if not (math.isfinite(primal) and math.isfinite(dual)) or \
-            (status == "AlmostSolved" and abs(primal - dual) > _ALMOST * scale):
-        return float("nan"), (f"the convex solver stopped short (primal {primal:.9g}, "
-                              f"dual {dual:.9g})")
+    margin, note = _MARGIN, ""
+    if status == "AlmostSolved":
+        margin, note = _REDUCED_MARGIN, f" (solver at reduced accuracy: margin {_REDUCED_MARGIN:g})"
     # Every term of J is >= 0, so a floor below zero says nothing more than 0.
-    return max(0.0, min(primal, dual) - _MARGIN * scale), ""
+    return max(0.0, min(primal, dual) - margin * scale), note
 
 
 def _describe(kind, cut: _Cut, src) -> str:
@@ -559,7 +627,7 @@ def _check_amount(value, place):
                          fix="give a number such as 0.1")
 
 
-def information_floor(spec: Spec, max_dim: int | None = None) -> Floor:
+def information_floor(spec: Spec, max_dim: int | None = None, area_cuts: bool | None = None) -> Floor:
     """Lower bound on the objective J that no circuit of ``spec`` can beat.
 
     Price form: ``min sum_a w_a err_a + sum_{cut} price_l P_l`` over the
@@ -572,6 +640,10 @@ def information_floor(spec: Spec, max_dim: int | None = None) -> Floor:
         A validated spec.
     max_dim : int, optional
         Skip (status ``"skipped"``) worlds with more state dimensions.
+    area_cuts : bool, optional
+        Also bound each weighted area by the capacity of the links into it
+        (one more semidefinite block per area; tighter, slower). Default: on
+        for worlds of at most ``AREA_CUTS_DIM`` dimensions.
 
     Returns
     -------
@@ -593,7 +665,9 @@ def information_floor(spec: Spec, max_dim: int | None = None) -> Floor:
         total = sum(cut.targets[n].weight * e for n, e in errs.items())
         return total + sum(cut.prices[i] * P for i, P in powers.items() if cut.prices[i] > 0)
 
-    return _solve(spec, "objective", objective, lambda *args: [], max_dim)
+    if area_cuts is None:
+        area_cuts = spec.world.dim <= AREA_CUTS_DIM
+    return _solve(spec, "objective", objective, lambda *args: [], max_dim, area_cuts=area_cuts)
 
 
 def least_cut_energy(spec: Spec, errors: dict, max_dim: int | None = None) -> Floor:

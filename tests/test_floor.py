@@ -285,17 +285,57 @@ links:
             assert floor.objective <= res.objective <= floor.objective * (1 + 1e-6)
 
 
+def relay_spec(a, q, N, price):
+    """AR(1) read without noise by a relay (noiseless, free links), which
+    reports to the top area over one noisy priced link, with a free noiseless
+    prediction back."""
+    return parse_spec(f"""
+spec: 1
+world:
+  states:
+    x: {{dim: 1, dynamics: {a}, noise: {q}}}
+sensors:
+  s: {{observes: {{x: 1}}, noise: 0}}
+areas:
+  relay: {{dim: 1}}
+  top: {{tracks: x, lag: 1}}
+links:
+  - {{from: s, to: relay, kind: residual}}
+  - {{from: relay, to: s, kind: prediction}}
+  - {{from: relay, to: top, kind: residual, noise: {N}, price: {price}}}
+  - {{from: top, to: relay, kind: prediction}}
+""")
+
+
+def test_area_cut_closed_form_behind_a_relay():
+    # The top area's own in-link carries the delayed world x(t-2) at rate
+    # 1/2 log2(a^2 + q/D) (scalar sequential rate-distortion, Tanaka et al.
+    # 2017), and lag 1 one hop late is a one-step prediction: a^2 D + q.
+    lam = 0.05
+    spec = relay_spec(A, Q, N, lam)
+    D = math.sqrt(lam * N * Q / (A * A))   # minimiser of a^2 D + q + lam N (a^2 + q/D - 1)
+    expected = A * A * D + Q + lam * srd_power(D)
+    floor = information_floor(spec, area_cuts=True)
+    assert floor.objective == pytest.approx(expected, rel=1e-6)
+    assert floor.objective <= expected
+    # Without the area's own cut only the delay is counted: the bound is q.
+    assert information_floor(spec, area_cuts=False).objective == pytest.approx(Q, rel=1e-6)
+    # Innovations relayed up attain it.
+    res = design(spec)
+    assert floor.objective <= res.objective <= floor.objective * (1 + 1e-6)
+
+
 # ---------------------------------------------------------------------------
 # never above an achieved objective
 
 @pytest.mark.parametrize("path", SPECS, ids=lambda p: p.stem)
 def test_bound_below_the_designed_objective_of_every_example(path):
     spec = load_spec(path)
-    floor = information_floor(spec)
-    assert floor.status == OPTIMAL
     res = design(spec)
-    assert floor.objective <= res.objective
-    assert floor.objective > 0
+    for cuts in (False, True):
+        floor = information_floor(spec, area_cuts=cuts)
+        assert floor.status == OPTIMAL
+        assert 0 < floor.objective <= res.objective
 
 
 def random_gains(spec, rng, radius=0.8):
@@ -333,18 +373,20 @@ def test_bound_below_random_circuits(path):
         used = {b.name: sum(sc.links[i].power for i in b.links) for b in spec.budgets}
         feasible = dataclasses.replace(spec, budgets=tuple(
             dataclasses.replace(b, total=used[b.name]) for b in spec.budgets))
-        floor = information_floor(feasible)
-        assert floor.status == OPTIMAL
-        assert floor.objective <= sc.objective
+        for cuts in (False, True):
+            floor = information_floor(feasible, area_cuts=cuts)
+            assert floor.status == OPTIMAL
+            assert floor.objective <= sc.objective
 
 
 @pytest.mark.parametrize("seed", [1, 2])
 def test_bound_below_designs_of_generated_circuits(seed):
     spec = parse_spec(generate_spec_text(areas=4, levels=2, density=0.5, seed=seed, max_lag=2))
-    floor = information_floor(spec)
     res = design(spec, FAST)
-    assert floor.status == OPTIMAL
-    assert floor.objective <= res.objective
+    for cuts in (False, True):
+        floor = information_floor(spec, area_cuts=cuts)
+        assert floor.status == OPTIMAL
+        assert floor.objective <= res.objective
 
 
 # ---------------------------------------------------------------------------
