@@ -55,6 +55,7 @@ _RICCATI_ITER = 100_000
 LOOSE_POOLED = "areas pooled: one decoder sees every cut output"
 LOOSE_POOLED_CUTS = "areas pooled at the sensors (each area's own in-links are counted too)"
 LOOSE_HOPS = "links between areas treated as perfect (only the cut and their delay are counted)"
+LOOSE_HOPS_CUTS = "links into relays and unweighted areas treated as perfect (only their delay is counted)"
 LOOSE_FEEDBACK = "noise on predictions into sensors ignored"
 LOOSE_SENSORS = "noisy sensors: the bound lets the sender filter its readings; a sensor has no memory"
 LOOSE_SMOOTH = "smoothing areas (lag above their hops from a sensor) bounded by the unlimited-channel smoother"
@@ -515,8 +516,10 @@ def _solve(spec: Spec, kind: str, objective_of, extra, max_dim, budgets=True, ar
     powers = {i: cp.sum(v) for i, v in p.items()}
     if any(price > 0 and i not in powers for i, price in cut.prices.items()):
         cut.dropped.append(LOOSE_PRICES)
-    if LOOSE_POOLED in cut.dropped and area_cuts and src is not None and src.full:
-        cut.dropped[cut.dropped.index(LOOSE_POOLED)] = LOOSE_POOLED_CUTS
+    if area_cuts and src is not None and src.full:
+        for plain, counted in ((LOOSE_POOLED, LOOSE_POOLED_CUTS), (LOOSE_HOPS, LOOSE_HOPS_CUTS)):
+            if plain in cut.dropped:
+                cut.dropped[cut.dropped.index(plain)] = counted
     prior = _errors_at(cut, _stationary(cut.A, cut.Q))  # nothing crosses the cut
     more = extra(errs, powers, cut, prior)
     if isinstance(more, tuple) and more[0] == INFEASIBLE:
