@@ -154,9 +154,48 @@ def cmd_render(args) -> int:
     out = _render_output(args)
     data = read_result(args.result)
     spec = _load(args.spec).spec if args.spec else None
-    save_circuit(data, out, spec=spec, width_by=args.width_by)
+    save_circuit(data, out, spec=spec, width_by=args.width_by, view=args.view)
     print(f"wrote {out}")
     return 0
+
+
+# -- `report` and `explain` (pictures and words, issue 15) ---------------------
+
+
+def cmd_report(args) -> int:
+    from .render import read_result
+    from .report import check_report_path, save_report
+
+    check_report_path(args.output)
+    data = read_result(args.result)
+    spec = _load(args.spec).spec if args.spec else None
+    save_report(data, args.output, spec=spec)
+    print(f"wrote {args.output}")
+    return 0
+
+
+def cmd_explain(args) -> int:
+    from .results import explain_text
+
+    print(explain_text(" ".join(args.word) if args.word else None))
+    return 0
+
+
+def _add_report_and_explain(sub) -> None:
+    s = sub.add_parser("report", help="one self-contained HTML page about a design",
+                       description="Write one HTML page with everything inline: status and objective, the "
+                                   "drawing, the tables with their legends, why each silent link is silent, "
+                                   "the lower bound and gap when the result has one, the spec text that made "
+                                   "the design and the tool versions.")
+    s.add_argument("result", metavar="RESULT.json", help="a result of `hierarchy design SPEC --json RESULT.json`")
+    s.add_argument("-o", "--output", required=True, metavar="PAGE.html", help="the page to write")
+    s.add_argument("--spec", metavar="SPEC", help="the spec the result came from (optional)")
+    s.set_defaults(run=cmd_report)
+    s = sub.add_parser("explain", help="what every column of the printed tables means",
+                       description="Explain the columns of the tables that `design`, `evaluate` and `check` "
+                                   "print; give a column name to explain just that one.")
+    s.add_argument("word", nargs="*", help="a column, e.g. power, SNR, 'through gain' (default: all)")
+    s.set_defaults(run=cmd_explain)
 
 
 def _study_setup(args, specs, kind, show=(), coords=()):
@@ -310,7 +349,11 @@ def build_parser() -> argparse.ArgumentParser:
                    help="link width proportional to power (default) or to share of budget")
     s.add_argument("--spec", metavar="SPEC", help="the spec the result came from (optional; the result "
                                                   "alone is enough)")
+    s.add_argument("--view", choices=("auto", "circuit", "matrix"), default="auto",
+                   help="circuit: the layered drawing; matrix: link powers, sender by receiver, ordered by "
+                        "level (scales to any size); auto (default): the drawing up to 24 areas, else the matrix")
     s.set_defaults(run=cmd_render)
+    _add_report_and_explain(sub)
 
     s = sub.add_parser("sweep", help="design at every value of one spec value (CSV, JSON, plot)",
                        description="Vary one spec value over a grid and design every point, warm-started from "

@@ -68,15 +68,20 @@ def _figure(width, height):
     return fig
 
 
+def figure_bytes(fig, fmt="png", dpi=150) -> bytes:
+    """A figure as the bytes of a .png, .svg or .pdf file; fixed metadata
+    keep the bytes the same from run to run."""
+    buf = io.BytesIO()
+    metadata = {"png": {"Software": None}, "svg": {"Date": None}, "pdf": {"CreationDate": None}}[fmt]
+    fig.savefig(buf, format=fmt, dpi=dpi, metadata=metadata)
+    return buf.getvalue()
+
+
 def save_figure(fig, path, dpi=150) -> None:
     """Write a figure atomically; the format follows the extension."""
     from .io import atomic_write_bytes
 
-    fmt = check_plot_path(path)
-    buf = io.BytesIO()
-    metadata = {"png": {"Software": None}, "svg": {"Date": None}, "pdf": {"CreationDate": None}}[fmt]
-    fig.savefig(buf, format=fmt, dpi=dpi, metadata=metadata)
-    atomic_write_bytes(path, buf.getvalue())
+    atomic_write_bytes(path, figure_bytes(fig, check_plot_path(path), dpi))
 
 
 def default_show(study) -> list:
