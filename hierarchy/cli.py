@@ -215,14 +215,14 @@ def _study_setup(args, specs, kind, show=(), coords=()):
     return Options(restarts=args.restarts, max_iter=args.max_iter, seed=args.seed), base, plot
 
 
-def _study_finish(args, study, base, plot, show=None) -> int:
+def _study_finish(args, study, base, plot, show=None, kinds=None) -> int:
     from .plots import save_study_plot
     from .studies import study_text
 
     print(study_text(study, show))
     print(f"\nwrote {base}.csv and {base}.json (finished points kept in {base}.parts/)")
     if plot:
-        save_study_plot(study, plot, show=show or None, log_y=getattr(args, "log_y", False))
+        save_study_plot(study, plot, show=show or None, log_y=getattr(args, "log_y", False), kinds=kinds)
         print(f"wrote {plot}")
     return 1 if any(r.get("status") == "failed" for r in study.rows) else 0
 
@@ -239,10 +239,13 @@ def cmd_sweep(args) -> int:
     spec = _load(args.spec).spec
     parse_path(spec, args.path)
     show = parse_show(args.show)
+    from .plots import check_log_y
+
+    check_log_y(args.log_y)
     opts, base, plot = _study_setup(args, [spec], "sweep", show, [args.path])
     values = grid(args.start, args.stop, args.points, args.log)
     study = sweep(spec, args.path, values, opts, log=args.log, output=base, **_run_kw(args))
-    return _study_finish(args, study, base, plot, show)
+    return _study_finish(args, study, base, plot, show, kinds={l.id: l.kind for l in spec.links})
 
 
 def cmd_phase(args) -> int:
@@ -370,7 +373,9 @@ def build_parser() -> argparse.ArgumentParser:
     s.add_argument("--show", metavar="COLUMNS", help="columns to plot, comma-separated, e.g. "
                                                      "'links[a->s].power,areas[a].error' (default: every link's "
                                                      "power and every area's error)")
-    s.add_argument("--log-y", action="store_true", help="logarithmic value axes in the plot")
+    s.add_argument("--log-y", nargs="?", const=True, default=False, metavar="QUANTITIES",
+                   help="logarithmic value axes in the plot: alone, every panel; or the quantities to draw "
+                        "on a log scale, comma-separated, e.g. --log-y power")
     _study_arguments(s, "sweep")
     s.set_defaults(run=cmd_sweep)
 
