@@ -515,7 +515,7 @@ def _legend_handles(width_by, top_value, silent_count, width=MAX_WIDTH):
     from matplotlib.lines import Line2D
 
     what = "power" if width_by == "power" else "budget share"
-    top_text = _num(top_value) if width_by == "power" else f"{100 * top_value:.0f}%"
+    top_text = f"{_num(top_value)} model units\u00b2" if width_by == "power" else f"{100 * top_value:.0f}%"
     silent = "silent (not worth sending)" + (f": {silent_count} link(s)" if silent_count else "")
     return [
         Line2D([], [], color=RESIDUAL_COLOUR, linestyle=RESIDUAL_STYLE, linewidth=2.5, label="residual (up)"),
