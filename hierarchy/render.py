@@ -689,9 +689,8 @@ def _node_order(g):
     """Nodes by level, and within a level in the drawing's order."""
     labels = {n: n for n in g.nodes}
     size = {n: _box_size(labels[n], _FONT) for n in g.nodes}
-    rows, _ = _rows(g)
-    rows = _order_rows(g, rows, size, sweeps=4)
-    return rows
+    rows, top = _rows(g)
+    return _order_rows(g, rows, size, sweeps=4), top
 
 
 def draw_matrix(result, spec=None):
@@ -719,25 +718,27 @@ def draw_matrix(result, spec=None):
     """
     import numpy as np
     from matplotlib.colors import LinearSegmentedColormap, LogNorm, to_rgb
+    from matplotlib.ticker import NullFormatter
 
     data, spec = _as_dict(result, spec)
     g = result_graph(data, spec)
-    rows = _node_order(g)
+    rows, top = _node_order(g)
     order = [n for nodes in rows.values() for n in nodes]
     index = {n: i for i, n in enumerate(order)}
     n = len(order)
     cell = min(0.32, max(0.11, 9.0 / n))  # inches
     font = min(8.0, cell * 72 * 0.78)
-    name_in = 0.6 * font / 72 * max(len(s) for s in order) + 0.15
+    name_in = 0.6 * font / 72 * max(len(s) for s in order) + 0.15  # tick labels of node names
+    level_in = 0.6 * font / 72 * (9 if top + 1 in rows else len(f"L{top}")) + 0.2  # "unreached" or "L12"
     side = n * cell
     title = _title(data)
-    title_in = (title.count("\n") + 1) * 10 * 1.35 / 72 + 0.3
-    bar_in = 0.9
-    fig_w = max(name_in + side + 1.0, 6.0)
-    fig_h = name_in + side + title_in + bar_in + 0.4
+    title_in = (title.count("\n") + 2) * 10 * 1.35 / 72 + 0.3
+    bar_in = 0.9  # the two colour scales and their labels
+    left = name_in + 0.45  # names, then the "sender" label
+    bottom = bar_in + name_in + 0.45
+    fig_w = max(left + side + level_in + 0.2, 6.0)
+    fig_h = bottom + side + level_in + title_in
     fig = _figure(fig_w, fig_h)
-    left = (fig_w - side - 1.0 + name_in) / 2
-    bottom = bar_in + 0.35
     ax = fig.add_axes([left / fig_w, bottom / fig_h, side / fig_w, side / fig_h])
 
     live = [float(r["power"]) for r in data["links"].values() if not r.get("silent") and float(r["power"]) > 0]
@@ -776,8 +777,7 @@ def draw_matrix(result, spec=None):
     # Level numbers: on the right (rows) and on top (columns), at each group's middle.
     starts = np.concatenate([[-0.5], bounds, [n - 0.5]])
     mids = (starts[:-1] + starts[1:]) / 2
-    names = [("unreached" if k > max(rows) - 1 and any(g.nodes[m].get("level") is None for m in nodes)
-              else f"L{k}") for k, nodes in rows.items()]
+    names = ["unreached" if k > top else f"L{k}" for k in rows]
     right = ax.secondary_yaxis("right")
     right.set_yticks(mids, names, fontsize=font)
     right.tick_params(length=0)
@@ -789,11 +789,12 @@ def draw_matrix(result, spec=None):
     from matplotlib.cm import ScalarMappable
 
     for k, (kind, label) in enumerate(((RESIDUAL, "residual power (up)"), (PREDICTION, "prediction power (down)"))):
-        width = min(side, fig_w - 1.0) / 2 - 0.3
+        width = (fig_w - 1.6) / 2
         cax = fig.add_axes([(0.5 + k * (width + 0.6)) / fig_w, 0.45 / fig_h, width / fig_w, 0.14 / fig_h])
         bar = fig.colorbar(ScalarMappable(norm=norm, cmap=maps[kind]), cax=cax, orientation="horizontal")
         bar.set_label(label + ", model units", fontsize=8)
         bar.ax.tick_params(labelsize=7)
+        bar.ax.xaxis.set_minor_formatter(NullFormatter())  # labelled minor ticks collide on a short scale
     fig.text(0.5, 1 - 0.12 / fig_h, title + "\nlink powers: row sends to column; grey x = silent",
              ha="center", va="top", fontsize=10, linespacing=1.35, gid="title")
     fig.hierarchy_cells = cells
