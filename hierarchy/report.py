@@ -185,13 +185,20 @@ def report_html(data, spec=None) -> str:
                  _num(r.get("shadow_price")), "yes" if r.get("met") else "NO"] for b, r in budgets.items()]
         parts.append("<h2>Budgets</h2>" + _table(cols, rows) + _legend("budgets", cols))
 
-    silent = {lid: row.get("silent_reason") for lid, row in data["links"].items() if row.get("silent")}
+    silent = {lid: row for lid, row in data["links"].items() if row.get("silent")}
     parts.append("<h2>Silent links</h2>")
-    if silent:
-        parts.append("<p>Links not worth sending at this design, and why:</p><ul>"
-                     + "".join(f"<li><b>{_e(lid)}</b>: {_e(reason or 'no reason recorded')}</li>"
-                               for lid, reason in silent.items()) + "</ul>")
-    else:
+    groups = (("not worth sending", "Checked at this design and not worth sending:"),
+              ("untested", "Silent, but not checked at this design:"),
+              (None, "Silent:"))
+    for verdict, head in groups:
+        rows = [(lid, row) for lid, row in silent.items()
+                if row.get("silent_verdict") == verdict
+                or verdict is None and row.get("silent_verdict") not in ("not worth sending", "untested")]
+        if rows:
+            parts.append(f"<p>{_e(head)}</p><ul>" + "".join(
+                f"<li><b>{_e(lid)}</b>: {_e(row.get('silent_reason') or 'no reason recorded')}</li>"
+                for lid, row in rows) + "</ul>")
+    if not silent:
         parts.append("<p>None: every link carries a signal at this design.</p>")
 
     parts.append("<h2>The spec that made it</h2>")

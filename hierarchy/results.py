@@ -285,8 +285,8 @@ EXPLANATIONS = (
     ("links", "through gain", "the size of what the link passes on, ||K S|| (residual) or ||K G|| (prediction), "
                               "Frobenius norm: sender times receiver, free of the scaling gauge (a signal can be "
                               "sent louder and received softer with nothing changed)"),
-    ("links", "note", "'silent' when the link is not worth sending at this design (the reason is listed below "
-                      "the tables)"),
+    ("links", "note", "'silent' when the link sends nothing at this design; below the tables, whether it was "
+                      "checked not worth sending or left untested, and why (docs/search.md says what each promises)"),
     ("budgets", "budget", "the budget group's name"),
     ("budgets", "total", "the most power the group's links may send together"),
     ("budgets", "used", "the power they send at this design"),
