@@ -363,7 +363,9 @@ def build_parser() -> argparse.ArgumentParser:
                                    "its neighbour. PATH is links[FROM->TO].price or .noise, budgets[NAME].total, "
                                    "areas[NAME].weight or .activity_price, sensors[NAME].noise, "
                                    "world.states[NAME].noise or .dynamics (a noise or dynamics is set to the "
-                                   "number times the identity). Rerunning an interrupted sweep resumes it.")
+                                   "number times the identity). In a shell, quote the path "
+                                   "('links[a->b].price': unquoted, `>` redirects) or write it with no shell "
+                                   "characters: links.a:b.price. Rerunning an interrupted sweep resumes it.")
     s.add_argument("spec")
     s.add_argument("path", metavar="PATH", help="the value to vary, e.g. 'links[low->high].price'")
     s.add_argument("--from", dest="start", type=float, required=True, help="first value")
