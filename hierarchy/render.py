@@ -20,7 +20,8 @@ Nodes
 Colour and line style (the Okabe-Ito colour-blind-safe palette)
     Residuals (bottom-up): solid lines in Okabe-Ito blue ``#0072B2``.
     Predictions (top-down): dash-dot lines in Okabe-Ito vermillion ``#D55E00``.
-    Silent links (not worth sending): thin dashed grey lines, whatever their
+    Silent links (sending nothing; the legend says whether the designer
+    checked them not worth sending): thin dashed grey lines, whatever their
     kind. Colour and line style each tell the kinds apart on their own, so the
     picture survives colour-blindness and grey-scale printing.
 Width
@@ -511,12 +512,23 @@ def _figure(width, height):
     return fig
 
 
-def _legend_handles(width_by, top_value, silent_count, width=MAX_WIDTH):
+def _silent_words(data) -> str:
+    """The legend's words for silent links: how many, and what was checked
+    (the designer tests a silent link at the final design, or says it did not)."""
+    verdicts = [row.get("silent_verdict") for row in data["links"].values() if row.get("silent")]
+    if not verdicts:
+        return "silent (sends nothing)"
+    if all(v == "not worth sending" for v in verdicts):
+        return f"silent (not worth sending): {len(verdicts)} link(s)"
+    untested = sum(v == "untested" for v in verdicts)
+    return f"silent (sends nothing): {len(verdicts)} link(s)" + (f", {untested} not tested" if untested else "")
+
+
+def _legend_handles(width_by, top_value, silent, width=MAX_WIDTH):
     from matplotlib.lines import Line2D
 
     what = "power" if width_by == "power" else "budget share"
     top_text = f"{_num(top_value)} model units\u00b2" if width_by == "power" else f"{100 * top_value:.0f}%"
-    silent = "silent (not worth sending)" + (f": {silent_count} link(s)" if silent_count else "")
     return [
         Line2D([], [], color=RESIDUAL_COLOUR, linestyle=RESIDUAL_STYLE, linewidth=2.5, label="residual (up)"),
         Line2D([], [], color=PREDICTION_COLOUR, linestyle=_style(PREDICTION_DASHES, 2.5), linewidth=2.5,
@@ -672,8 +684,7 @@ def draw_circuit(result, spec=None, width_by="power"):
         _side_table(fig, [(left + draw_w + 0.1) / fig_w, legend_in / fig_h, (table_in - 0.1) / fig_w,
                           draw_h / fig_h], data, left_out, table_font)
 
-    silent_count = sum(1 for row in data["links"].values() if row.get("silent"))
-    fig.legend(handles=_legend_handles(width_by, top_value, silent_count, MAX_WIDTH * max(scale, 0.5)),
+    fig.legend(handles=_legend_handles(width_by, top_value, _silent_words(data), MAX_WIDTH * max(scale, 0.5)),
                loc="lower center", bbox_to_anchor=(0.5, 0.02), ncol=2, frameon=False, fontsize=font * 0.9,
                handlelength=3.2)
     fig.text(0.5, 1 - 0.12 / fig_h, title, ha="center", va="top", fontsize=font * 1.1, linespacing=1.35,

@@ -365,3 +365,16 @@ def test_example_drawings_have_no_text_on_text(name):
     for fig in (draw_circuit(fake_result(name)), draw_matrix(fake_result(name))):
         boxes = text_boxes(fig)
         assert overlapping(boxes) == [] and outside(fig, boxes) == []
+
+
+def test_the_legend_claims_only_what_was_checked():
+    # docs/search.md: "not worth sending" is said only of links tested at the final design.
+    data = fake_result("two-level", silent={"station-view->probe", "upstream-view->station-view"})
+    for lid in data["links"]:
+        if data["links"][lid]["silent"]:
+            data["links"][lid]["silent_verdict"] = "not worth sending"
+    legend = [t.get_text() for t in draw_circuit(data).legends[0].get_texts()]
+    assert "silent (not worth sending): 2 link(s)" in legend
+    data["links"]["station-view->probe"]["silent_verdict"] = "untested"
+    legend = [t.get_text() for t in draw_circuit(data).legends[0].get_texts()]
+    assert "silent (sends nothing): 2 link(s), 1 not tested" in legend
