@@ -154,9 +154,48 @@ def cmd_render(args) -> int:
     out = _render_output(args)
     data = read_result(args.result)
     spec = _load(args.spec).spec if args.spec else None
-    save_circuit(data, out, spec=spec, width_by=args.width_by)
+    save_circuit(data, out, spec=spec, width_by=args.width_by, view=args.view)
     print(f"wrote {out}")
     return 0
+
+
+# -- `report` and `explain` (pictures and words, issue 15) ---------------------
+
+
+def cmd_report(args) -> int:
+    from .render import read_result
+    from .report import check_report_path, save_report
+
+    check_report_path(args.output)
+    data = read_result(args.result)
+    spec = _load(args.spec).spec if args.spec else None
+    save_report(data, args.output, spec=spec)
+    print(f"wrote {args.output}")
+    return 0
+
+
+def cmd_explain(args) -> int:
+    from .results import explain_text
+
+    print(explain_text(" ".join(args.word) if args.word else None))
+    return 0
+
+
+def _add_report_and_explain(sub) -> None:
+    s = sub.add_parser("report", help="one self-contained HTML page about a design",
+                       description="Write one HTML page with everything inline: status and objective, the "
+                                   "drawing, the tables with their legends, why each silent link is silent, "
+                                   "the lower bound and gap when the result has one, the spec text that made "
+                                   "the design and the tool versions.")
+    s.add_argument("result", metavar="RESULT.json", help="a result of `hierarchy design SPEC --json RESULT.json`")
+    s.add_argument("-o", "--output", required=True, metavar="PAGE.html", help="the page to write")
+    s.add_argument("--spec", metavar="SPEC", help="the spec the result came from (optional)")
+    s.set_defaults(run=cmd_report)
+    s = sub.add_parser("explain", help="what every column of the printed tables means",
+                       description="Explain the columns of the tables that `design`, `evaluate` and `check` "
+                                   "print; give a column name to explain just that one.")
+    s.add_argument("word", nargs="*", help="a column, e.g. power, SNR, 'through gain' (default: all)")
+    s.set_defaults(run=cmd_explain)
 
 
 def _study_setup(args, specs, kind, show=(), coords=()):
@@ -176,14 +215,14 @@ def _study_setup(args, specs, kind, show=(), coords=()):
     return Options(restarts=args.restarts, max_iter=args.max_iter, seed=args.seed), base, plot
 
 
-def _study_finish(args, study, base, plot, show=None) -> int:
+def _study_finish(args, study, base, plot, show=None, kinds=None) -> int:
     from .plots import save_study_plot
     from .studies import study_text
 
     print(study_text(study, show))
     print(f"\nwrote {base}.csv and {base}.json (finished points kept in {base}.parts/)")
     if plot:
-        save_study_plot(study, plot, show=show or None, log_y=getattr(args, "log_y", False))
+        save_study_plot(study, plot, show=show or None, log_y=getattr(args, "log_y", False), kinds=kinds)
         print(f"wrote {plot}")
     return 1 if any(r.get("status") == "failed" for r in study.rows) else 0
 
@@ -200,10 +239,13 @@ def cmd_sweep(args) -> int:
     spec = _load(args.spec).spec
     parse_path(spec, args.path)
     show = parse_show(args.show)
+    from .plots import check_log_y
+
+    check_log_y(args.log_y)
     opts, base, plot = _study_setup(args, [spec], "sweep", show, [args.path])
     values = grid(args.start, args.stop, args.points, args.log)
     study = sweep(spec, args.path, values, opts, log=args.log, output=base, **_run_kw(args))
-    return _study_finish(args, study, base, plot, show)
+    return _study_finish(args, study, base, plot, show, kinds={l.id: l.kind for l in spec.links})
 
 
 def cmd_phase(args) -> int:
@@ -310,14 +352,20 @@ def build_parser() -> argparse.ArgumentParser:
                    help="link width proportional to power (default) or to share of budget")
     s.add_argument("--spec", metavar="SPEC", help="the spec the result came from (optional; the result "
                                                   "alone is enough)")
+    s.add_argument("--view", choices=("auto", "circuit", "matrix"), default="auto",
+                   help="circuit: the layered drawing; matrix: link powers, sender by receiver, ordered by "
+                        "level (scales to any size); auto (default): the drawing up to 24 areas, else the matrix")
     s.set_defaults(run=cmd_render)
+    _add_report_and_explain(sub)
 
     s = sub.add_parser("sweep", help="design at every value of one spec value (CSV, JSON, plot)",
                        description="Vary one spec value over a grid and design every point, warm-started from "
                                    "its neighbour. PATH is links[FROM->TO].price or .noise, budgets[NAME].total, "
                                    "areas[NAME].weight or .activity_price, sensors[NAME].noise, "
                                    "world.states[NAME].noise or .dynamics (a noise or dynamics is set to the "
-                                   "number times the identity). Rerunning an interrupted sweep resumes it.")
+                                   "number times the identity). In a shell, quote the path "
+                                   "('links[a->b].price': unquoted, `>` redirects) or write it with no shell "
+                                   "characters: links.a:b.price. Rerunning an interrupted sweep resumes it.")
     s.add_argument("spec")
     s.add_argument("path", metavar="PATH", help="the value to vary, e.g. 'links[low->high].price'")
     s.add_argument("--from", dest="start", type=float, required=True, help="first value")
@@ -327,7 +375,9 @@ def build_parser() -> argparse.ArgumentParser:
     s.add_argument("--show", metavar="COLUMNS", help="columns to plot, comma-separated, e.g. "
                                                      "'links[a->s].power,areas[a].error' (default: every link's "
                                                      "power and every area's error)")
-    s.add_argument("--log-y", action="store_true", help="logarithmic value axes in the plot")
+    s.add_argument("--log-y", nargs="?", const=True, default=False, metavar="QUANTITIES",
+                   help="logarithmic value axes in the plot: alone, every panel; or the quantities to draw "
+                        "on a log scale, comma-separated, e.g. --log-y power")
     _study_arguments(s, "sweep")
     s.set_defaults(run=cmd_sweep)
 

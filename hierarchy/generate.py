@@ -6,8 +6,10 @@ tier slow). Each tier is driven by the one above it, and the bottom tier by
 every tier above it, so what the probes read mixes all timescales: through
 a chain alone the upper tiers would be invisible from the bottom (even a
 free, central Kalman filter could not beat their prior). Probes at the
-bottom read the bottom tier; areas sit on levels 1..L, each tracking its
-own tier (or none, for a relay) with an optional lag. Links:
+bottom read the bottom tier; areas sit on levels 1..L (written into the
+spec as ``level:``, so drawings show them there even when a level-skipping
+residual reaches them early), each tracking its own tier (or none, for a
+relay) with an optional lag. Links:
 
 * between neighbouring levels (probes are level 0), every pair of nodes gets
   a residual up and the prediction down that it subtracts;
@@ -169,10 +171,10 @@ def generate_spec_text(areas: int, levels: int, density: float, seed: int, area_
             relay = k > 1 and rng.random() < relays
             lag = int(rng.integers(0, max_lag + 1)) if max_lag else 0
             if relay:
-                out.append(f"  {name}: {{dim: {area_dim}}}")
+                out.append(f"  {name}: {{dim: {area_dim}, level: {k}}}")
             else:
                 weight = 0.5 + rng.random()
-                entry = f"  {name}: {{dim: {area_dim}, tracks: tier-{k}, weight: {_num(weight)}"
+                entry = f"  {name}: {{dim: {area_dim}, level: {k}, tracks: tier-{k}, weight: {_num(weight)}"
                 out.append(entry + (f", lag: {lag}}}" if lag else "}"))
 
     pairs = [(lo, hi) for k in range(levels) for lo in nodes[k] for hi in nodes[k + 1]]

@@ -116,7 +116,10 @@ class Sensor:
 class Area:
     """An area: state ``z`` of size ``dim``; optional target and prices.
 
-    ``tracks`` is empty for a free relay. ``pin`` may hold ``M``.
+    ``tracks`` is empty for a free relay. ``pin`` may hold ``M``. ``level``
+    is where drawings and ``hierarchy check`` place the area (1 or more);
+    ``None`` leaves it to the default rule of :func:`hierarchy.circuit.levels`.
+    It changes no number the tool computes.
     """
 
     name: str
@@ -126,6 +129,7 @@ class Area:
     lag: int = 0
     activity_price: float = 0.0
     pin: Mapping[str, np.ndarray] = field(default_factory=dict)
+    level: int | None = None
 
     @property
     def has_target(self) -> bool:

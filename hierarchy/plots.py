@@ -32,9 +32,30 @@ import numpy as np
 
 from .errors import InputError
 
-#: Okabe & Ito (2008), "Color Universal Design".
-PALETTE = ("#0072B2", "#D55E00", "#009E73", "#CC79A7", "#E69F00", "#56B4E9", "#F0E442", "#000000")
+from .render import PREDICTION_COLOUR, RESIDUAL_COLOUR, SILENT_COLOUR
+
+#: Link kinds keep the colours of the circuit drawings in every figure.
+KIND_COLOURS = {"residual": RESIDUAL_COLOUR, "prediction": PREDICTION_COLOUR}
+#: The rest of Okabe & Ito (2008), "Color Universal Design", for everything
+#: that is not a link (areas, specs, silent sets), so no colour means two things.
+PALETTE = ("#009E73", "#CC79A7", "#E69F00", "#56B4E9", "#000000", "#F0E442")
 FORMATS = {".png": "png", ".svg": "svg", ".pdf": "pdf"}
+#: Links that share one panel of a sweep; more get small multiples.
+MAX_SHARED_LINKS = 3
+MULTIPLE_COLUMNS = 3
+#: Units of quantities in the model's own terms (a spec with a units
+#: section can name them; see :func:`unit_label`).
+MODEL_UNITS = {"power": "model units\u00b2", "error": "model units\u00b2", "used": "model units\u00b2",
+               "total": "model units\u00b2", "noise": "model units\u00b2", "activity": "model units\u00b2",
+               "objective": "objective units", "weighted_error": "objective units",
+               "energy_cost": "objective units", "activity_cost": "objective units",
+               "price": "objective units per unit of power", "activity_price": "objective units per unit",
+               "shadow_price": "objective units per unit of power", "through_gain": "ratio",
+               "weight": "objective units per unit of error", "dynamics": "per step", "snr": "ratio",
+               "bits": "bit/step"}
+_LINE_STYLES = ("-", "--", ":", "-.")
+_MARKERS = ("o", "s", "^", "D")
+_HATCHES = ("//", "\\\\", "..")
 
 
 def _colour(k: int) -> str:
@@ -68,15 +89,20 @@ def _figure(width, height):
     return fig
 
 
+def figure_bytes(fig, fmt="png", dpi=150) -> bytes:
+    """A figure as the bytes of a .png, .svg or .pdf file; fixed metadata
+    keep the bytes the same from run to run."""
+    buf = io.BytesIO()
+    metadata = {"png": {"Software": None}, "svg": {"Date": None}, "pdf": {"CreationDate": None}}[fmt]
+    fig.savefig(buf, format=fmt, dpi=dpi, metadata=metadata)
+    return buf.getvalue()
+
+
 def save_figure(fig, path, dpi=150) -> None:
     """Write a figure atomically; the format follows the extension."""
     from .io import atomic_write_bytes
 
-    fmt = check_plot_path(path)
-    buf = io.BytesIO()
-    metadata = {"png": {"Software": None}, "svg": {"Date": None}, "pdf": {"CreationDate": None}}[fmt]
-    fig.savefig(buf, format=fmt, dpi=dpi, metadata=metadata)
-    atomic_write_bytes(path, buf.getvalue())
+    atomic_write_bytes(path, figure_bytes(fig, check_plot_path(path), dpi))
 
 
 def default_show(study) -> list:
@@ -108,16 +134,91 @@ def _edges(values, log) -> np.ndarray:
     return np.array([first, *mids, last])
 
 
-def _plot_series(ax, x, y, ok, colour, label):
+def _plot_series(ax, x, y, ok, colour, label, ls="-", marker="o"):
     """A line through every point; filled markers where converged, hollow where not."""
-    ax.plot(x, y, "-", color=colour, lw=1.4, label=label)
-    ax.plot(x[ok], y[ok], "o", color=colour, ms=4)
+    ax.plot(x, y, ls=ls, color=colour, lw=1.4, label=label)
+    ax.plot(x[ok], y[ok], marker, ls="", color=colour, ms=4)
     if np.any(~ok):
-        ax.plot(x[~ok], y[~ok], "o", mfc="none", mec=colour, ms=6, mew=1.3)
+        ax.plot(x[~ok], y[~ok], marker, ls="", color=colour, mfc="none", mec=colour, ms=6, mew=1.3)
 
 
-def sweep_figure(study, show=None, log_y=False):
+def _kind_style(column, kinds, k):
+    """Colour, line style and marker of a series: links in their kind's
+    colour (the circuit drawings' blue residuals and vermillion predictions),
+    the k-th link of a kind in the k-th line style; other quantities in the
+    colours left over."""
+    lid = column[len("links["):column.index("]")] if column.startswith("links[") else None
+    kind = (kinds or {}).get(lid)
+    if kind is not None:
+        colour = KIND_COLOURS[kind]
+    else:
+        colour = _colour(k)
+    return colour, _LINE_STYLES[k % len(_LINE_STYLES)], _MARKERS[k % len(_MARKERS)]
+
+
+def unit_label(quantity, units=None) -> str:
+    """The axis label of a quantity (the last part of a column or value
+    path) with its unit.
+
+    ``units`` maps a quantity (``power``, ``error``, ``price``, ...) to the
+    unit text to print; quantities it leaves out are in the model's own
+    units. It is the hook for a spec's units section.
+
+    Examples
+    --------
+    >>> unit_label("power")
+    'power (model units\u00b2)'
+    >>> unit_label("power", {"power": "mW"})
+    'power (mW)'
+    """
+    return f"{quantity} ({unit_of(quantity, units)})"
+
+
+def unit_of(quantity, units=None) -> str:
+    """The unit text of a quantity: from ``units`` if it names it, else the model's."""
+    return (units or {}).get(quantity) or MODEL_UNITS.get(quantity, "model units")
+
+
+def check_log_y(log_y) -> None:
+    """Refuse, before any design, a ``--log-y`` word that is no quantity
+    (most often a value path that `--log-y` took as its argument).
+
+    Examples
+    --------
+    >>> check_log_y("power,error")
+    """
+    if not isinstance(log_y, str):
+        return
+    known = sorted(set(MODEL_UNITS) | {"all"})
+    for word in (w.strip() for w in log_y.split(",")):
+        if word and word not in known:
+            raise InputError(f"`{word}` is not a quantity a sweep plots", place="--log-y",
+                             fix="give quantities such as power or error (" + ", ".join(known) + "), or put "
+                                 "--log-y after the spec and the value path")
+
+
+def _wants_log(field, log_y) -> bool:
+    if isinstance(log_y, str):
+        log_y = [w.strip() for w in log_y.split(",") if w.strip()]
+    if log_y is True or log_y == ["all"]:
+        return True
+    return bool(log_y) and field in log_y
+
+
+def _silent_bounds(r, log):
+    lo = _mid(r["below"], r["from"], log) if r["below"] is not None else r["from"]
+    hi = _mid(r["to"], r["above"], log) if r["above"] is not None else r["to"]
+    return min(lo, hi), max(lo, hi)
+
+
+def sweep_figure(study, show=None, log_y=False, kinds=None, units=None):
     """Chosen quantities against the swept value, silent ranges shaded.
+
+    Up to :data:`MAX_SHARED_LINKS` links share a panel per quantity; beyond
+    that every link gets its own small panel (small multiples, one shared
+    x axis, one y scale per quantity row), shaded only where that link is
+    silent, so bands never stack. Links are coloured by kind as in the
+    circuit drawings; legends sit outside the data.
 
     Parameters
     ----------
@@ -126,12 +227,18 @@ def sweep_figure(study, show=None, log_y=False):
     show : list of str, optional
         Table columns to draw (default :func:`default_show`); columns with
         the same last part (``power``, ``error``, ...) share a panel.
-    log_y : bool
-        Logarithmic value axes.
+    log_y : bool, str or list of str
+        Logarithmic value axes: ``True`` for every panel, or the quantities
+        to draw on a log scale (``["power"]``, or ``"power,error"``).
+    kinds : dict, optional
+        Link id -> ``"residual"`` or ``"prediction"``, for the colours.
+    units : dict, optional
+        Quantity -> unit text (see :func:`unit_label`).
 
     Returns
     -------
     matplotlib.figure.Figure
+        Shaded ranges carry the artist id ``silent:<link id>``.
     """
     from matplotlib.transforms import blended_transform_factory
 
@@ -142,46 +249,92 @@ def sweep_figure(study, show=None, log_y=False):
     log = axis["scale"] == "log"
     x = np.asarray(axis["values"], dtype=float)
     ok = np.array([bool(r.get("converged")) for r in study.rows])
-    panels = []
+    fields = []
     for c in show:
-        f = _field(c)
-        if f not in panels:
-            panels.append(f)
-    fig = _figure(7.5, 1.2 + 2.3 * len(panels))
-    axes = fig.subplots(len(panels), 1, sharex=True, squeeze=False)[:, 0]
-    for ax, f in zip(axes, panels):
-        for c in (c for c in show if _field(c) == f):
-            _plot_series(ax, x, _numbers(study.column(c)), ok, _colour(show.index(c)), c)
-        ax.set_ylabel(f)
-        if log_y:
-            ax.set_yscale("log")
-        ax.grid(alpha=0.3)
+        if _field(c) not in fields:
+            fields.append(_field(c))
+    link_cols = [c for c in show if c.startswith("links[")]
+    multiples = len(link_cols) > MAX_SHARED_LINKS
     ranges = study.silent_ranges()
-    for k, (lid, runs) in enumerate(ranges.items()):
-        colour = _colour(len(show) + k)
-        for n, r in enumerate(runs):
-            lo = _mid(r["below"], r["from"], log) if r["below"] is not None else r["from"]
-            hi = _mid(r["to"], r["above"], log) if r["above"] is not None else r["to"]
-            lo, hi = min(lo, hi), max(lo, hi)
-            for j, ax in enumerate(axes):
-                span = ax.axvspan(lo, hi, color=colour, alpha=0.14, lw=0,
-                                  label=f"{lid} silent" if j == 0 and n == 0 else None)
-                span.set_gid(f"silent:{lid}")
-            top = axes[0]
-            top.text(_mid(lo, hi, log), 0.98 - 0.09 * k, f"{lid} silent", color=colour, fontsize=8,
-                     ha="center", va="top", transform=blended_transform_factory(top.transData, top.transAxes),
-                     gid=f"silent-label:{lid}")
-    for ax in axes:
-        ax.legend(fontsize=7, loc="best")
+    # One row of panels per quantity; a quantity of many links is a grid.
+    layout = []  # (field, [columns in each panel])
+    for f in fields:
+        cols = [c for c in show if _field(c) == f]
+        if multiples and any(c.startswith("links[") for c in cols):
+            layout.append((f, [[c] for c in cols]))
+        else:
+            layout.append((f, [cols]))
+    ncols = min(MULTIPLE_COLUMNS, max(len(p) for _, p in layout))
+    grid_rows = sum(-(-len(p) // ncols) for _, p in layout)
+    width = 7.5 if ncols == 1 else 3.3 * ncols + 0.8
+    height = 0.9 + (2.3 if ncols == 1 else 2.0) * grid_rows
+    fig = _figure(width, height)
+    spec = fig.add_gridspec(grid_rows, ncols)
+    used, r0, first = [], 0, None
+    for f, panels in layout:
+        nrows = -(-len(panels) // ncols)
+        # A panel of several series spans the row; small multiples fill the grid.
+        slots = [spec[r0, :]] if len(panels) == 1 else [spec[r0 + i // ncols, i % ncols] for i in range(len(panels))]
+        cells = []
+        for slot in slots:
+            cells.append(fig.add_subplot(slot, sharex=first))
+            first = first or cells[-1]
+        for ax, cols in zip(cells, panels):
+            for c in cols:
+                same = [d for d in cols if _kind_of(d, kinds) == _kind_of(c, kinds)]
+                colour, ls, marker = _kind_style(c, kinds, same.index(c) if kinds else show.index(c))
+                _plot_series(ax, x, _numbers(study.column(c)), ok, colour, c, ls=ls, marker=marker)
+            if _wants_log(f, log_y):
+                ax.set_yscale("log")
+            ax.grid(alpha=0.3)
+            ax.set_ylabel(unit_label(f, units), fontsize=8)
+            if len(cols) == 1 and multiples:
+                ax.set_title(cols[0], fontsize=8, color=_kind_style(cols[0], kinds, 0)[0])
+            # Shading: in a panel of one link, only that link's silence; in a
+            # shared panel, each shown link's (a few at most).
+            own = [c[len("links["):c.index("]")] for c in cols if c.startswith("links[")]
+            shade = own if (multiples or own) else [lid for lid in ranges if f"links[{lid}].power" in show]
+            shaded = [lid for lid in ranges if lid in shade and ranges[lid]]
+            for k, lid in enumerate(shaded):
+                for n, r in enumerate(ranges[lid]):
+                    lo, hi = _silent_bounds(r, log)
+                    span = ax.axvspan(lo, hi, color=SILENT_COLOUR, alpha=0.18, lw=0,
+                                      hatch=_HATCHES[k % len(_HATCHES)] if len(shaded) > 1 else None)
+                    span.set_gid(f"silent:{lid}")
+                    if not own:  # the band's name is written once, over its link's own panel
+                        continue
+                    ax.text(_mid(lo, hi, log), 0.97 - 0.1 * k, f"{lid} silent", color="#555555", fontsize=7,
+                            ha="center", va="top", gid=f"silent-label:{lid}",
+                            transform=blended_transform_factory(ax.transData, ax.transAxes))
+            if not (multiples and len(cols) == 1):  # (a small multiple is named by its title)
+                ax.legend(fontsize=7, loc="upper left", bbox_to_anchor=(1.01, 1.0), borderaxespad=0)
+            used.append(ax)
+        r0 += nrows
     if log:
-        axes[-1].set_xscale("log")
-    axes[-1].set_xlabel(axis["path"])
+        for ax in used:
+            ax.set_xscale("log")
+    bottom = {}
+    for ax in used:  # the lowest panel of each grid column carries the x label
+        col = ax.get_subplotspec().colspan.start
+        if col not in bottom or ax.get_subplotspec().rowspan.start > bottom[col].get_subplotspec().rowspan.start:
+            bottom[col] = ax
+    for ax in used:
+        if ax not in bottom.values():
+            ax.tick_params(labelbottom=False)
+    for ax in bottom.values():
+        ax.set_xlabel(f"{axis['path']} ({unit_of(axis['path'].rsplit('.', 1)[-1], units)})", fontsize=8)
     name = study.specs[0]["name"]
     title = f"{name}: sweep of {axis['path']}"
     if np.any(~ok):
         title += f"\n({int(np.sum(~ok))} point(s) NOT converged: hollow markers)"
     fig.suptitle(title, fontsize=10)
     return fig
+
+
+def _kind_of(column, kinds):
+    if not column.startswith("links["):
+        return None
+    return (kinds or {}).get(column[len("links["):column.index("]")])
 
 
 def _silent_matrix(study, lid, nx, ny):
@@ -193,7 +346,7 @@ def _silent_matrix(study, lid, nx, ny):
     return m
 
 
-def phase_figure(study, show=None):
+def phase_figure(study, show=None, units=None):
     """Which links are silent over a grid of two values, and one quantity.
 
     Left: the set of silent links at each grid point, one colour per set,
@@ -232,7 +385,7 @@ def phase_figure(study, show=None):
     left.pcolormesh(X, Y, code, cmap=ListedColormap(colours), alpha=0.55,
                     norm=BoundaryNorm(np.arange(len(sets) + 1) - 0.5, len(sets)))
     mesh = right.pcolormesh(X, Y, values.reshape(ny, nx), cmap="viridis", shading="flat")
-    fig.colorbar(mesh, ax=right, label=show)
+    fig.colorbar(mesh, ax=right, label=f"{show} ({unit_of(_field(show), units)})")
     links = sorted({lid for r in study.rows for lid in (r.get("silent_links") or [])})
     handles = [Patch(color=c, alpha=0.55, label="(failed)" if s is None else ("none silent" if not s else
                      " + ".join(s) + " silent")) for s, c in zip(sets, colours)]
@@ -259,8 +412,8 @@ def phase_figure(study, show=None):
             ax.set_xscale("log")
         if ylog:
             ax.set_yscale("log")
-        ax.set_xlabel(ax_x["path"])
-        ax.set_ylabel(ax_y["path"])
+        ax.set_xlabel(f"{ax_x['path']} ({unit_of(ax_x['path'].rsplit('.', 1)[-1], units)})")
+        ax.set_ylabel(f"{ax_y['path']} ({unit_of(ax_y['path'].rsplit('.', 1)[-1], units)})")
     left.set_title("silent links", fontsize=10)
     right.set_title(show, fontsize=10)
     left.legend(handles=handles, fontsize=7, loc="upper left", bbox_to_anchor=(0, -0.14), ncol=2)
@@ -268,10 +421,15 @@ def phase_figure(study, show=None):
     return fig
 
 
-def compare_figure(study):
+def compare_figure(study, units=None):
     """Pareto fronts (weighted error against energy used) of every spec on one
     plot, and below, each spec's excess objective over the best at each
     budget, with the ranges where each spec wins shaded (``best:<label>``).
+
+    The excess is given as a share of the spec's own objective, ``(J - J_best)
+    / J``: for the runner-up this is the "relative" margin of the comparison
+    table (margin over the runner-up's objective), so picture and table
+    agree.
 
     Returns
     -------
@@ -294,7 +452,7 @@ def compare_figure(study):
     best = np.nanmin(np.vstack([v for v, _ in objective.values()]), axis=0)
     for k, lab in enumerate(labels):
         v, ok = objective[lab]
-        _plot_series(bottom, totals, 100 * (v - best) / np.abs(best), ok, _colour(k), lab)
+        _plot_series(bottom, totals, 100 * (v - best) / np.abs(v), ok, _colour(k), lab)
     for r in study.extra["best"]:
         if r["best"] in labels:
             i0, i1 = list(totals).index(r["from"]), list(totals).index(r["to"])
@@ -302,10 +460,10 @@ def compare_figure(study):
             hi = _mid(totals[i1], totals[i1 + 1], log) if i1 + 1 < n else totals[i1]
             span = bottom.axvspan(lo, hi, color=_colour(labels.index(r["best"])), alpha=0.12, lw=0)
             span.set_gid(f"best:{r['best']}")
-    top.set_xlabel("energy used (power of the varied budget)")
-    top.set_ylabel("weighted error")
-    bottom.set_xlabel("total budget")
-    bottom.set_ylabel("objective above the best (%)")
+    top.set_xlabel(f"energy used: power of the varied budget ({unit_of('used', units)})")
+    top.set_ylabel(f"weighted error ({unit_of('weighted_error', units)})")
+    bottom.set_xlabel(f"total budget ({unit_of('total', units)})")
+    bottom.set_ylabel("objective above the best\n(% of the spec's own objective)")
     if log:
         top.set_xscale("log")
         bottom.set_xscale("log")
@@ -319,16 +477,16 @@ def compare_figure(study):
     return fig
 
 
-def study_figure(study, show=None, log_y=False):
+def study_figure(study, show=None, log_y=False, kinds=None, units=None):
     """The figure of any study (sweep, phase map or comparison)."""
     if study.kind == "sweep":
-        return sweep_figure(study, show, log_y)
+        return sweep_figure(study, show, log_y, kinds=kinds, units=units)
     if study.kind == "phase":
-        return phase_figure(study, show)
-    return compare_figure(study)
+        return phase_figure(study, show, units=units)
+    return compare_figure(study, units=units)
 
 
-def save_study_plot(study, path, show=None, log_y=False) -> None:
+def save_study_plot(study, path, show=None, log_y=False, kinds=None, units=None) -> None:
     """Draw a study (see :func:`study_figure`) and write it atomically to
     ``path`` (.png, .svg or .pdf).
 
@@ -337,4 +495,4 @@ def save_study_plot(study, path, show=None, log_y=False) -> None:
     >>> save_study_plot(study, "sweep.png", show=["objective"])    # doctest: +SKIP
     """
     check_plot_path(path)
-    save_figure(study_figure(study, show, log_y), path)
+    save_figure(study_figure(study, show, log_y, kinds=kinds, units=units), path)

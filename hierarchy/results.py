@@ -49,11 +49,34 @@ def through_gain(spec, gains, link) -> float:
     return float(np.linalg.norm(blocks["K"] @ blocks["S"]))
 
 
+def _source(spec) -> dict | None:
+    """The spec file's text, so that a result (and its report) says exactly
+    what made it; ``None`` for a spec not read from a file that still exists."""
+    import hashlib
+
+    if not spec.path:
+        return None
+    try:
+        with open(spec.path, encoding="utf-8") as fh:
+            text = fh.read()
+    except (OSError, UnicodeDecodeError):
+        return None
+    return {"path": str(spec.path), "sha256": hashlib.sha256(text.encode("utf-8")).hexdigest(), "text": text}
+
+
 def scores_to_dict(spec, scores, gains=None) -> dict:
     """JSON-ready dict of exact :class:`~hierarchy.evaluate.Scores`."""
+    from . import __version__
+    from .circuit import build_graph
+
     budgeted = {lid for b in spec.budgets for lid in b.links}
     d = scores.to_dict()
-    d = {"format": RESULT_FORMAT, "version": RESULT_VERSION, "spec": spec.name, **d}
+    d = {"format": RESULT_FORMAT, "version": RESULT_VERSION, "spec": spec.name,
+         "tool": f"hierarchy {__version__}", **d}
+    source = _source(spec)
+    if source is not None:
+        d["source"] = source
+    level = {n: lv for n, lv in build_graph(spec).nodes(data="level")}
     for lid, row in d["links"].items():
         link = spec.link(lid)
         # model.md: a link's power is pinned down only when it is priced or budgeted.
@@ -62,6 +85,8 @@ def scores_to_dict(spec, scores, gains=None) -> dict:
             row["through_gain"] = through_gain(spec, gains, link)
     for name, row in d["areas"].items():
         row["relay"] = not spec.area(name).has_target
+        # Where drawings place the area (spec `level:` or the default rule).
+        row["level"] = level.get(name)
     return _clean(d)
 
 
@@ -160,7 +185,10 @@ def scores_text(spec, scores, gains=None, result=None) -> str:
     link_rows = []
     for l in spec.links:
         s = scores.links[l.id]
-        row = [l.id, l.kind, fmt(s.power), fmt(s.snr), fmt(s.bits), fmt(s.price)]
+        in_budgets = [b.name for b in spec.budgets if l.id in b.links]
+        # A budgeted link pays through its budget, not a price: say which.
+        price = fmt(s.price) if s.price or not in_budgets else "budget " + ",".join(in_budgets)
+        row = [l.id, l.kind, fmt(s.power), fmt(s.snr), fmt(s.bits), price]
         if result is not None:
             shares = [f"{b.name}:{100 * s.power / b.total:.1f}%" for b in result.budgets.values()
                       if l.id in b.links and b.total > 0]
@@ -170,7 +198,7 @@ def scores_text(spec, scores, gains=None, result=None) -> str:
         link_rows.append(row)
     header = ["link", "kind", "power", "SNR", "bits/step", "price"]
     if result is not None:
-        header += ["budget share", "gain", "note"]
+        header += ["budget share", "through gain", "note"]
     out.append(table(header, link_rows))
     if spec.budgets and result is None:
         rows = []
@@ -183,6 +211,8 @@ def scores_text(spec, scores, gains=None, result=None) -> str:
         f" + energy {fmt(scores.energy_cost, 6)} + activity {fmt(scores.activity_cost, 6)}"
     )
     out.append(f"closed loop: spectral radius {fmt(scores.radius, 6)} (stability margin {fmt(scores.margin, 4)})")
+    if result is None:  # result_text puts the hint after its own tables
+        out.append(EXPLAIN_HINT)
     return "\n\n".join(out)
 
 
@@ -212,6 +242,105 @@ def result_text(result) -> str:
     k, n = result.agreement
     agree = (f"; {k} of {n} searches reached it" if n > 1 else "") + (
         f" ({', '.join(s['search'] + ' ' + fmt(s['objective'], 6) for s in result.searches)})" if k < n else "")
-    parts.append(f"solver: {verdict}{agree}: {result.message}; {result.iterations} iterations, "
-                 f"{result.restarts} starts, {result.evaluations} evaluations, {result.seconds:.2f} s")
+    # The message speaks of the run that ended the design; the counts are
+    # totals over every start, so say so (they would seem to disagree).
+    parts.append(f"solver: {verdict}{agree}: {result.message} (in the run that ended the design); in all "
+                 f"{_count(result.iterations, 'iteration')} over {_count(result.restarts, 'start')}, "
+                 f"{_count(result.evaluations, 'evaluation')}, {result.seconds:.2f} s")
+    parts.append(EXPLAIN_HINT)
     return "\n\n".join(parts)
+
+
+def _count(n, word) -> str:
+    return f"{n} {word}" + ("" if n == 1 else "s")
+
+
+# -- what the words mean ---------------------------------------------------
+
+#: Printed under the tables of `evaluate` and `design`.
+EXPLAIN_HINT = "(every column is explained by `hierarchy explain`; one word: `hierarchy explain power`)"
+
+#: (table, column, meaning): every column the text tables print, and the
+#: words of `hierarchy check`. Powers, errors and noise powers are in the
+#: model's own units: squared units of the signals as the spec writes them.
+EXPLANATIONS = (
+    ("areas", "area", "the area's name"),
+    ("areas", "tracks", "the world blocks whose (lagged) state the area estimates; 'relay' when it tracks nothing"),
+    ("areas", "lag", "how many steps back the estimate looks: 0 the present, 1 the previous step, more smooths"),
+    ("areas", "error", "E||e||^2, the stationary mean squared error of the area's estimate of its target "
+                       "(model units squared)"),
+    ("areas", "err/prior", "error divided by the prior: the variance of the target itself, which is the error "
+                           "of an area that knows nothing; 1 means no better than guessing the mean"),
+    ("areas", "activity", "E||z||^2, the mean squared size of the area's whole state"),
+    ("links", "link", "the link's id, FROM->TO"),
+    ("links", "kind", "prediction (top-down, sends G z) or residual (bottom-up, sends S u - P p~)"),
+    ("links", "power", "E||s||^2, the mean squared size of what the link sends per step, before its channel adds "
+                       "noise (model units squared); this is what prices and budgets charge for"),
+    ("links", "SNR", "power divided by the channel's noise power: how loud the link is above its noise"),
+    ("links", "bits/step", "the information the link carries per step, 1/2 log2 det(I + N^-1 Cov s), "
+                           "for Gaussian signals over its noisy channel"),
+    ("links", "price", "what one unit of power costs in the objective; a link paid through a budget shows "
+                       "'budget NAME' instead (its effective price is that budget's shadow price)"),
+    ("links", "budget share", "the link's power as a percentage of each budget it belongs to"),
+    ("links", "through gain", "the size of what the link passes on, ||K S|| (residual) or ||K G|| (prediction), "
+                              "Frobenius norm: sender times receiver, free of the scaling gauge (a signal can be "
+                              "sent louder and received softer with nothing changed)"),
+    ("links", "note", "'silent' when the link sends nothing at this design; below the tables, whether it was "
+                      "checked not worth sending or left untested, and why (docs/search.md says what each promises)"),
+    ("budgets", "budget", "the budget group's name"),
+    ("budgets", "total", "the most power the group's links may send together"),
+    ("budgets", "used", "the power they send at this design"),
+    ("budgets", "use", "used as a percentage of total"),
+    ("budgets", "shadow price", "how much the objective would fall per unit of extra budget (the Lagrange "
+                                "multiplier); 0 when the budget does not bind"),
+    ("budgets", "met", "whether used is within total (to 1e-6 relative)"),
+    ("totals", "objective", "weighted error + energy (price times power, summed over priced links) + activity "
+                            "(activity price times activity); budgets limit power instead of pricing it"),
+    ("totals", "spectral radius", "the largest modulus of the closed loop's eigenvalues; below 1 means stable"),
+    ("totals", "stability margin", "1 - spectral radius: how far the loop is from instability"),
+    ("check", "noise power", "tr N, the trace of a channel's noise covariance: the noise's mean squared size per "
+                             "step, in the same units as power"),
+    ("check", "level", "where drawings place a node: sensors 0; an area its spec's `level:`, else one above the "
+                       "lowest node that sends it a residual"),
+)
+
+
+def explain_text(word=None) -> str:
+    """What the columns of the text tables mean, all of them or one.
+
+    Parameters
+    ----------
+    word : str, optional
+        A column name (any case); ``None`` explains every column.
+
+    Raises
+    ------
+    InputError
+        For a word no table prints, with the words that exist.
+
+    Examples
+    --------
+    >>> print(explain_text("snr"))
+    links table, SNR: power divided by the channel's noise power: how loud the link is above its noise
+    """
+    from .errors import InputError
+
+    if word is None:
+        out, table_name = [], None
+        for tab, col, meaning in EXPLANATIONS:
+            if tab != table_name:
+                out.append(("" if table_name is None else "\n") + f"{tab}:")
+                table_name = tab
+            out.append(f"  {col}: {meaning}")
+        return "\n".join(out)
+    key = " ".join(str(word).lower().split())
+    rows = [r for r in EXPLANATIONS if r[1].lower() == key]
+    if not rows:
+        import difflib
+
+        words = sorted({c for _, c, _ in EXPLANATIONS}, key=str.lower)
+        near = difflib.get_close_matches(key, [w.lower() for w in words], n=1)
+        hint = f" (did you mean `{near[0]}`?)" if near else ""
+        raise InputError(f"no table has a column `{word}`{hint}", place="explain",
+                         fix="choose one of: " + ", ".join(words))
+    return "\n".join(f"{tab} table, {col}: {meaning}" for tab, col, meaning in rows)

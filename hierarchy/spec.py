@@ -51,6 +51,8 @@ MAX_NODES = 1_000_000
 #: Limit on the world's total size, on the sum of sensor, area and link sizes.
 MAX_TOTAL_DIM = 5000
 MAX_LAG = 50
+#: Highest drawing level an area may be given (more than any real hierarchy).
+MAX_LEVEL = 1000
 #: A world (and a closed loop, see hierarchy.evaluate) is stable when its
 #: spectral radius is below this: a margin keeps rounding from deciding.
 STABLE_RADIUS = 1.0 - 1e-9
@@ -835,6 +837,10 @@ _AREA_KEYS = (
     _Key("activity_price", _Real(0.0),
          "price per unit of the area's activity E||z||^2", default=0),
     _Key("pin", _Table(_AREA_PIN_KEYS), "gains fixed by hand (not optimised)"),
+    _Key("level", _Int(1, MAX_LEVEL),
+         "where drawings and `hierarchy check` place the area (sensors are "
+         "level 0); default: one above the lowest node that sends it a "
+         "residual; changes no computed number"),
 )
 
 _K_PIN = _Key("K", _Matrix(),
@@ -1182,7 +1188,8 @@ def _area(name: str, f: _Fields, tracks: tuple, dim: int) -> Area:
     pin = _expand_pins(f.get("pin"),
                        {"M": (dim, dim, f"area `{name}` has size {dim}")})
     return Area(name=name, dim=dim, tracks=tracks, weight=weight, lag=lag,
-                activity_price=f.get("activity_price"), pin=frozen_map(pin))
+                activity_price=f.get("activity_price"), pin=frozen_map(pin),
+                level=f.get("level") if f.given("level") else None)
 
 
 @dataclass(frozen=True)
@@ -1408,7 +1415,41 @@ def _warnings(drafts: list, links: tuple, sensor_names: set) -> tuple:
     return tuple(out)
 
 
+#: What the tool's own output files are, and what to do with one given as a spec.
+_OUTPUT_FILES = {
+    "hierarchy-result": ("a result file (written by `hierarchy design --json` or `evaluate --json`)",
+                         "give the spec the result came from; to draw or report the result use "
+                         "`hierarchy render RESULT.json` or `hierarchy report RESULT.json -o report.html`"),
+    "hierarchy-gains": ("a gains file (written by `hierarchy design --gains`)",
+                        "give the spec as SPEC and this file with `--gains` (or `--start` for `design`)"),
+}
+
+
+def _flat_list_warnings(sensors: list) -> tuple:
+    """A flat list under `observes` is a diagonal, so it makes a sensor as
+    big as the state; when the sensor's size is not given, a one-row view
+    written flat (`[0.8, 0.6]`) silently becomes a 2-dim sensor."""
+    out = []
+    for name, f in sensors:
+        if f.given("dim"):
+            continue
+        for state, matrix in f.get("observes"):
+            n = len(matrix.value) if matrix.form == "diagonal" else 0
+            if n > 1:
+                entries = ", ".join(f"{v:g}" for v in matrix.value)
+                line = f" (line {matrix.at.line})" if matrix.at.line else ""
+                out.append(f"{matrix.at.place}{line}: the flat list [{entries}] is read as a {n} x {n} "
+                           f"diagonal, so sensor `{name}` reads {n} numbers; for one reading that mixes "
+                           f"the state (a 1 x {n} row) write [[{entries}]]; to keep the diagonal and "
+                           f"silence this warning, give `dim: {n}`")
+    return tuple(out)
+
+
 def _parse_document(root: _At, path) -> Spec:
+    kind = root.value.get("format") if isinstance(root.value, dict) else None
+    if isinstance(kind, str) and kind in _OUTPUT_FILES and "world" not in root.value:
+        what, fix = _OUTPUT_FILES[kind]
+        raise SpecError(f"this is {what}, not a spec", place=str(path) if path else "spec", fix=fix)
     top = _read_table(root, _TOP_KEYS)
     top.get("spec")
     world = _parse_world(top.get("world"))
@@ -1427,7 +1468,8 @@ def _parse_document(root: _At, path) -> Spec:
     return Spec(name=top.get("name") or default_name, world=world,
                 sensors=sensors, areas=areas, links=links, budgets=budgets,
                 version=SPEC_VERSION,
-                warnings=_warnings(drafts, links, sensor_names),
+                warnings=_warnings(drafts, links, sensor_names)
+                + _flat_list_warnings(top.get("sensors")),
                 path=str(path) if path is not None else None)
 
 

@@ -153,6 +153,17 @@ def _close(word, known) -> str:
     return f" (did you mean `{near[0]}`?)" if near else ""
 
 
+def _undotted(spec: Spec, text: str) -> str:
+    """The shell-safe form, ``links.low:high.price`` or ``areas.top.weight``,
+    in brackets (names never hold a dot); other text is returned as it is."""
+    for section in sorted(_SECTIONS, key=len, reverse=True):
+        name, dot, fld = text[len(section) + 1:].rpartition(".")
+        if text.startswith(section + ".") and dot and name and "[" not in text:
+            ids = [l.id for l in spec.links if f"{l.source}:{l.target}" == name] if section == "links" else []
+            return f"{section}[{ids[0] if len(ids) == 1 else name}].{fld}"
+    return text
+
+
 def parse_path(spec: Spec, text) -> ValuePath:
     """Read a value path and check that it names something in ``spec``.
 
@@ -165,11 +176,18 @@ def parse_path(spec: Spec, text) -> ValuePath:
     --------
     >>> parse_path(spec, "links[low->high].price")                 # doctest: +SKIP
     ValuePath(section='links', name='low->high', field='price')
+    >>> parse_path(spec, "links.low:high.price")    # the same, safe in a shell unquoted   # doctest: +SKIP
+    ValuePath(section='links', name='low->high', field='price')
     """
     if isinstance(text, ValuePath):
         text = str(text)
-    m = _PATH.match(str(text).strip())
+    m = _PATH.match(_undotted(spec, str(text).strip()))
     if m is None:
+        if str(text).strip().endswith("-") and "]" not in str(text):
+            raise InputError("this path looks cut at `-`: the shell may have read the `>` of `->` as a "
+                             "redirection (and written a file named after the rest)", place=str(text),
+                             fix="quote the path, e.g. 'links[low->high].price', or write it with no shell "
+                                 "characters: links.low:high.price")
         raise InputError("cannot read this value path", place=str(text),
                          fix="write SECTION[NAME].FIELD, e.g. " + _choices(settable_paths(spec), 4))
     section, name, fld = m.group("section"), m.group("name"), m.group("field")

@@ -105,7 +105,10 @@ def test_silent_links_are_thin_grey_and_dashed_kinds_differ():
     assert np.allclose(residual.get_edgecolor()[:3], to_rgb(RESIDUAL_COLOUR))
     assert np.allclose(prediction.get_edgecolor()[:3], to_rgb(PREDICTION_COLOUR))
     assert SILENT_COLOUR not in (RESIDUAL_COLOUR, PREDICTION_COLOUR)
-    assert fig.hierarchy_labels["station-view->probe"].get_text().startswith("silent")
+    # Silent links carry no label over the live ones; the legend counts them.
+    assert "station-view->probe" not in fig.hierarchy_labels
+    legend = [t.get_text() for t in fig.legends[0].get_texts()]
+    assert any(t.startswith("silent") and "1 link" in t for t in legend)
 
 
 def test_pair_bows_apart_and_arrows_end_outside_the_boxes():
@@ -136,20 +139,11 @@ def test_labels_title_and_legend():
     fig = draw_circuit(fake_result("two-level"))
     label = fig.hierarchy_labels["probe->station-view"].get_text()
     assert "P 0.1" in label and "SNR 2.5" in label and "bit/step" in label
-    title = fig.axes[0].get_title()
+    title = next(t.get_text() for t in fig.texts if t.get_gid() == "title")
     assert "river gauge, two levels" in title and "converged" in title and "objective 1.25" in title
-    legend = [t.get_text() for t in fig.axes[0].get_legend().get_texts()]
+    legend = [t.get_text() for t in fig.legends[0].get_texts()]
     assert any("residual" in t for t in legend) and any("prediction" in t for t in legend)
     assert any("silent" in t for t in legend)
-
-
-def test_many_areas_drop_link_labels():
-    areas = {f"a{i}": {"error": 0.1, "relay": False} for i in range(12)}
-    links = {"eye->a0": {"kind": "residual", "power": 1.0}}
-    links.update({f"a{i}->a{i + 1}": {"kind": "residual", "power": 0.1 * i} for i in range(11)})
-    fig = draw_circuit({"format": "hierarchy-result", "spec": "chain", "areas": areas, "links": links})
-    assert fig.hierarchy_labels == {} and len(fig.hierarchy_links) == 12
-    assert not any("bit/step" in t.get_text() for t in fig.axes[0].texts)
 
 
 @pytest.mark.parametrize("name", EXAMPLES)
@@ -232,3 +226,155 @@ def test_a_closed_pipe_is_not_an_error():
             "sys.exit(cli.main(['check', 'specs/two-level.yaml']))\n")
     out = subprocess.run([sys.executable, "-c", code], capture_output=True, text=True, cwd=ROOT, timeout=60)
     assert out.returncode == 0 and out.stderr == "", out.stderr
+
+
+# -- large circuits: both views, no text on text ------------------------------------
+
+
+def synthetic_powers(spec, seed=0, silent_share=0.2):
+    """A result dict for any spec with log-uniform powers and some silent links
+    (a drawing test: no design is run)."""
+    rng = np.random.default_rng(seed)
+    links = {}
+    for l in spec.links:
+        silent = bool(rng.random() < silent_share)
+        p = 0.0 if silent else float(10 ** rng.uniform(-3, 0))
+        noise = float(np.trace(l.noise))
+        links[l.id] = {"kind": l.kind, "power": p, "snr": p / noise, "bits": 0.5 * np.log2(1 + p / noise),
+                       "silent": silent, "silent_reason": "test" if silent else None}
+    levels = {n: d.get("level") for n, d in build_graph(spec).nodes(data=True)}
+    areas = {a.name: {"error": 0.1 if a.has_target else None, "relay": not a.has_target, "level": levels[a.name]}
+             for a in spec.areas}
+    return {"format": "hierarchy-result", "version": 1, "spec": spec.name, "status": "converged",
+            "objective": 1.0, "areas": areas, "links": links, "budgets": {}}
+
+
+def text_boxes(fig):
+    """Window extents of every visible, non-empty text of a drawn figure."""
+    from matplotlib.text import Text
+
+    fig.canvas.draw()
+    renderer = fig.canvas.get_renderer()
+    # Tick labels beyond an axis's view limits exist but are never drawn.
+    hidden = set()
+    for ax in fig.axes:
+        for axis in (ax.xaxis, ax.yaxis):
+            lo, hi = sorted(axis.get_view_interval())
+            for tick in axis.get_major_ticks() + axis.get_minor_ticks():
+                if not lo - 1e-9 * abs(hi - lo) <= tick.get_loc() <= hi + 1e-9 * abs(hi - lo):
+                    hidden |= {id(tick.label1), id(tick.label2)}
+    out = []
+    for t in fig.findobj(Text):
+        if t.get_visible() and t.get_text().strip() and id(t) not in hidden:
+            box = t.get_window_extent(renderer)
+            if box.width > 0 and box.height > 0:
+                out.append((t.get_text(), box))
+    return out
+
+
+def outside(fig, boxes):
+    """Texts that run off the figure (cut when saved)."""
+    w, h = fig.bbox.width, fig.bbox.height
+    return [t for t, b in boxes if b.x0 < -0.5 or b.y0 < -0.5 or b.x1 > w + 0.5 or b.y1 > h + 0.5]
+
+
+def overlapping(boxes):
+    """Pairs of texts whose boxes overlap by more than half a pixel."""
+    bad = []
+    for i, (a, p) in enumerate(boxes):
+        for b, q in boxes[i + 1:]:
+            if min(p.x1, q.x1) - max(p.x0, q.x0) > 0.5 and min(p.y1, q.y1) - max(p.y0, q.y0) > 0.5:
+                bad.append((a, b))
+    return bad
+
+
+@pytest.fixture(scope="module")
+def big_circuit():
+    from hierarchy.generate import generate_spec_text
+    from hierarchy.spec import parse_spec
+
+    spec = parse_spec(generate_spec_text(areas=32, levels=8, density=0.05, seed=2))
+    assert len(spec.areas) == 32
+    return spec, synthetic_powers(spec)
+
+
+def test_32_areas_circuit_view_has_no_text_on_text(big_circuit):
+    from hierarchy.render import MAX_LINK_LABELS
+
+    spec, data = big_circuit
+    fig = draw_circuit(data)
+    boxes = text_boxes(fig)
+    assert overlapping(boxes) == [] and outside(fig, boxes) == []
+    # Link labels also stay off every box; every live link is labelled or tabled.
+    renderer = fig.canvas.get_renderer()
+    nodes = [b.get_window_extent(renderer) for b in fig.hierarchy_nodes.values()]
+    for lid, label in fig.hierarchy_labels.items():
+        box = label.get_window_extent(renderer)
+        assert not any(min(box.x1, n.x1) > max(box.x0, n.x0) and min(box.y1, n.y1) > max(box.y0, n.y0)
+                       for n in nodes), lid
+    live = [lid for lid, row in data["links"].items() if not row["silent"]]
+    assert set(fig.hierarchy_labels) | set(fig.hierarchy_table) == set(live)
+    assert not set(fig.hierarchy_labels) & set(fig.hierarchy_table)
+    assert 0 < len(fig.hierarchy_labels) <= MAX_LINK_LABELS
+    # The labelled ones are the strongest that found room: none in the table is
+    # stronger than every labelled link.
+    power = {lid: data["links"][lid]["power"] for lid in live}
+    assert max(power[l] for l in fig.hierarchy_labels) == max(power.values())
+    # Areas sit on the levels the generator wrote.
+    y = {n: b.get_y() for n, b in fig.hierarchy_nodes.items()}
+    for a in spec.areas:
+        same = [b.name for b in spec.areas if b.level == a.level]
+        assert all(abs(y[a.name] - y[b]) < 1e-9 for b in same)
+    low, high = min(spec.areas, key=lambda a: a.level), max(spec.areas, key=lambda a: a.level)
+    assert y[high.name] > y[low.name]
+
+
+def test_32_areas_matrix_view_has_no_text_on_text(big_circuit):
+    from hierarchy.render import draw_matrix
+
+    spec, data = big_circuit
+    fig = draw_matrix(data)
+    boxes = text_boxes(fig)
+    names = {t for t, _ in boxes}
+    assert {a.name for a in spec.areas} <= names and {s.name for s in spec.sensors} <= names
+    assert len(boxes) > 2 * len(fig.hierarchy_order)  # row and column names, at least
+    assert overlapping(boxes) == [] and outside(fig, boxes) == []
+    # Rows and columns run by level, sensors first.
+    order = fig.hierarchy_order
+    level = {n: d["level"] for n, d in build_graph(spec).nodes(data=True)}
+    assert [level[n] for n in order] == sorted(level[n] for n in order)
+    for lid, (i, j) in fig.hierarchy_cells.items():
+        assert (order[i], order[j]) == tuple(lid.split("->"))
+
+
+def test_the_view_is_chosen_by_size(big_circuit, tmp_path):
+    from hierarchy.render import MAX_DRAWN_AREAS, draw
+
+    _, data = big_circuit
+    assert len(data["areas"]) > MAX_DRAWN_AREAS
+    assert hasattr(draw(data), "hierarchy_cells")  # auto: the matrix
+    assert hasattr(draw(fake_result("two-level")), "hierarchy_labels")  # auto: the drawing
+    with pytest.raises(InputError, match="unknown view"):
+        draw(data, view="grid")
+
+
+@pytest.mark.parametrize("name", EXAMPLES)
+def test_example_drawings_have_no_text_on_text(name):
+    from hierarchy.render import draw_matrix
+
+    for fig in (draw_circuit(fake_result(name)), draw_matrix(fake_result(name))):
+        boxes = text_boxes(fig)
+        assert overlapping(boxes) == [] and outside(fig, boxes) == []
+
+
+def test_the_legend_claims_only_what_was_checked():
+    # docs/search.md: "not worth sending" is said only of links tested at the final design.
+    data = fake_result("two-level", silent={"station-view->probe", "upstream-view->station-view"})
+    for lid in data["links"]:
+        if data["links"][lid]["silent"]:
+            data["links"][lid]["silent_verdict"] = "not worth sending"
+    legend = [t.get_text() for t in draw_circuit(data).legends[0].get_texts()]
+    assert "silent (not worth sending): 2 link(s)" in legend
+    data["links"]["station-view->probe"]["silent_verdict"] = "untested"
+    legend = [t.get_text() for t in draw_circuit(data).legends[0].get_texts()]
+    assert "silent (sends nothing): 2 link(s), 1 not tested" in legend
