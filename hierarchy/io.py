@@ -1,4 +1,10 @@
-"""Atomic file output, and paths the tool makes up itself.
+"""Bounded file input, atomic file output, and paths the tool makes up itself.
+
+Every file the tool reads (specs, gains, results, study parts) goes through
+:func:`read_bytes`: regular files only (a named pipe, a device or a socket
+is refused without blocking: the file is opened non-blocking and checked
+with ``fstat`` before any read), and never more than the reader's limit,
+whatever size the system reports.
 
 Every file the tool writes (results, gains, tables, pictures, the schema) is
 written to a temporary file beside the target, flushed to disk and renamed
@@ -18,11 +24,100 @@ from __future__ import annotations
 import contextlib
 import os
 import re
+import stat
 import tempfile
 
 from .errors import InputError
 
 _WRITTEN: list = []
+
+
+class ReadRefused(OSError):
+    """A file :func:`read_bytes` will not read. ``reason`` is one of
+    ``"missing"``, ``"folder"``, ``"not regular"``, ``"too large"`` and
+    ``"unreadable"``; ``str(err)`` says it in words."""
+
+    def __init__(self, reason: str, text: str):
+        super().__init__(text)
+        self.reason = reason
+
+
+def read_bytes(path, limit: int) -> bytes:
+    """The content of the regular file ``path``, at most ``limit`` bytes.
+
+    Raises
+    ------
+    ReadRefused
+        If the file does not exist, is a folder, is not a regular file (a
+        named pipe, a device, a socket), holds more than ``limit`` bytes, or
+        cannot be read. Never blocks on a pipe; never reads past
+        ``limit + 1`` bytes (a device reporting size 0 is refused before any
+        read, and a file growing while it is read is cut off).
+
+    Examples
+    --------
+    >>> import tempfile
+    >>> with tempfile.NamedTemporaryFile(delete=False) as fh:
+    ...     _ = fh.write(b"spec: 1")
+    >>> read_bytes(fh.name, 100)
+    b'spec: 1'
+    >>> read_bytes(fh.name, 3)
+    Traceback (most recent call last):
+    ...
+    hierarchy.io.ReadRefused: the file is larger than 3 bytes
+    >>> read_bytes("/dev/null", 100)
+    Traceback (most recent call last):
+    ...
+    hierarchy.io.ReadRefused: this is a character device, not a regular file
+    """
+    path = os.fspath(path)
+    try:
+        # O_NONBLOCK: opening a FIFO with no writer would otherwise wait forever.
+        fd = os.open(path, os.O_RDONLY | getattr(os, "O_NONBLOCK", 0) | getattr(os, "O_NOCTTY", 0))
+    except FileNotFoundError:
+        raise ReadRefused("missing", "no such file") from None
+    except IsADirectoryError:
+        raise ReadRefused("folder", "this is a folder") from None
+    except NotADirectoryError:  # `spec.yaml/`: a file used as a folder
+        raise ReadRefused("unreadable", "a part of the path is a file, not a folder (a '/' too many?)") from None
+    except OSError as exc:
+        raise ReadRefused("unreadable", exc.strerror or exc.__class__.__name__) from None
+    try:
+        info = os.fstat(fd)
+        if stat.S_ISDIR(info.st_mode):
+            raise ReadRefused("folder", "this is a folder")
+        if not stat.S_ISREG(info.st_mode):
+            raise ReadRefused("not regular", f"this is {_kind(info.st_mode)}, not a regular file")
+        if info.st_size > limit:
+            raise ReadRefused("too large", f"the file is larger than {limit:,} bytes")
+        chunks, got = [], 0
+        while got <= limit:
+            try:
+                chunk = os.read(fd, min(1 << 20, limit + 1 - got))
+            except OSError as exc:
+                raise ReadRefused("unreadable", exc.strerror or exc.__class__.__name__) from None
+            if not chunk:
+                break
+            chunks.append(chunk)
+            got += len(chunk)
+        if got > limit:
+            raise ReadRefused("too large", f"the file is larger than {limit:,} bytes")
+        return b"".join(chunks)
+    finally:
+        os.close(fd)
+
+
+def _kind(mode: int) -> str:
+    for test, name in ((stat.S_ISFIFO, "a named pipe"), (stat.S_ISCHR, "a character device"),
+                       (stat.S_ISBLK, "a block device"), (stat.S_ISSOCK, "a socket")):
+        if test(mode):
+            return name
+    return "a special file"
+
+
+def read_text(path, limit: int) -> str:
+    """:func:`read_bytes` decoded as UTF-8 (``UnicodeDecodeError`` if it is not)."""
+    return read_bytes(path, limit).decode("utf-8")
 
 
 def _umask() -> int:

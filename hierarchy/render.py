@@ -68,6 +68,9 @@ MIN_WIDTH = 1.0  # points, for a link that sends nothing
 MAX_WIDTH = 8.0  # points, for the largest power (or share) in the picture
 SILENT_WIDTH = 0.9
 MAX_LABELLED_AREAS = 10
+#: A result file is refused above this size (bytes): a 5000-dim design
+#: writes a few megabytes.
+MAX_RESULT_FILE = 50_000_000
 
 _LEVEL_GAP = 2.6  # data units (inches at full size) between levels
 _NODE_GAP = 1.6  # between boxes on one level
@@ -94,20 +97,27 @@ def read_result(path) -> dict:
     >>> sorted(data["links"])                # doctest: +SKIP
     ['probe->station-view', ...]
     """
+    from .io import ReadRefused, read_text
+
     path = os.fspath(path)
     try:
-        with open(path, encoding="utf-8") as fh:
-            text = fh.read()
-    except FileNotFoundError:
-        raise InputError("no such file", place=path, fix="give the path of a result written by "
-                         "`hierarchy design SPEC --json PATH`") from None
-    except (OSError, UnicodeDecodeError) as err:
+        text = read_text(path, MAX_RESULT_FILE)
+    except ReadRefused as err:
+        if err.reason == "missing":
+            raise InputError("no such file", place=path, fix="give the path of a result written by "
+                             "`hierarchy design SPEC --json PATH`") from None
+        raise InputError(f"cannot read the file ({err})", place=path,
+                         fix="give a readable result JSON file") from None
+    except UnicodeDecodeError as err:
         raise InputError(f"cannot read the file ({err})", place=path,
                          fix="give a readable result JSON file") from None
     try:
         data = json.loads(text)
     except json.JSONDecodeError as err:
         raise InputError(f"not valid JSON (line {err.lineno}, column {err.colno}: {err.msg})", place=path,
+                         fix="give a result written by `hierarchy design SPEC --json PATH`") from None
+    except RecursionError:
+        raise InputError("the JSON is nested too deeply", place=path,
                          fix="give a result written by `hierarchy design SPEC --json PATH`") from None
     _check_result(data, path)
     return data

@@ -93,6 +93,8 @@ TIMING_COLUMNS = ("seconds",)
 TIE_RTOL = 1e-5
 #: Largest number of points in one study.
 MAX_POINTS = 100_000
+#: A finished point's file above this size (bytes) is not trusted.
+MAX_PART_FILE = 50_000_000
 
 _SECTIONS = {
     "links": ("price", "noise"),
@@ -601,9 +603,13 @@ def _split(points: list, pieces: int) -> list:
 
 
 def _load_part(folder: Path, key: str):
-    try:
-        data = json.loads((folder / f"{key}.json").read_text())
-    except (OSError, ValueError):
+    from .io import read_text
+
+    try:  # a part that is not a readable regular file is designed again
+        data = json.loads(read_text(folder / f"{key}.json", MAX_PART_FILE))
+    except (OSError, ValueError, RecursionError):
+        return None
+    if not isinstance(data, dict) or not isinstance(data.get("row"), dict):
         return None
     if data.get("format") != POINT_FORMAT or data.get("key") != key:
         return None
