@@ -140,6 +140,55 @@ def _target_folder(path: str) -> str:
     return folder
 
 
+def _refuse_unsafe_target(path: str) -> None:
+    """An existing target must be a regular file that may be written: a
+    write-protected file is the user's way of saying "keep this"."""
+    try:
+        info = os.stat(path)
+    except OSError:
+        return  # a new file
+    if not stat.S_ISREG(info.st_mode):
+        raise InputError(f"the output exists and is {_kind(info.st_mode)}, not a regular file", place=path,
+                         fix="choose another path")
+    # (os.access alone says yes to root; the mode bits say what the user meant.)
+    if not (info.st_mode & 0o222) or not os.access(path, os.W_OK):
+        raise InputError("the output file is write-protected; it is left as it is", place=path,
+                         fix="choose another path, or make the file writable first (chmod u+w)")
+
+
+def check_output(path, place: str = "output") -> str:
+    """Refuse, before any work, an output path that could not be written:
+    empty, ending in '/', a folder, in a missing or unwritable folder, or an
+    existing file that is write-protected or not a regular file. Nothing is
+    left behind by the check.
+
+    Examples
+    --------
+    >>> check_output("")
+    Traceback (most recent call last):
+    ...
+    hierarchy.errors.InputError: output: the output path is empty
+      fix: give a file name, e.g. result.json
+    """
+    path = os.fspath(path)
+    if not path:
+        raise InputError("the output path is empty", place=place, fix="give a file name, e.g. result.json")
+    if path.endswith(("/", os.sep)):
+        raise InputError("an output path cannot end with '/'", place=path,
+                         fix="give a file name, e.g. " + os.path.join(path, "result.json"))
+    folder = _target_folder(path)
+    _refuse_unsafe_target(path)
+    try:  # the only honest test that the folder takes new files (root, read-only mounts)
+        fd, probe = tempfile.mkstemp(prefix=".tmp-check-", dir=folder)
+    except OSError as exc:
+        raise InputError(f"cannot write in this folder ({exc.strerror or exc.__class__.__name__})",
+                         place=path, fix="check the folder's permissions and free space, "
+                                         "or choose another path") from None
+    os.close(fd)
+    os.unlink(probe)
+    return path
+
+
 @contextlib.contextmanager
 def atomic_writer(path):
     """Open a temporary binary file beside ``path``; on a clean exit, rename it
@@ -156,6 +205,7 @@ def atomic_writer(path):
     """
     path = os.fspath(path)
     folder = _target_folder(path)
+    _refuse_unsafe_target(path)
     try:
         mode = os.stat(path).st_mode & 0o7777
     except OSError:

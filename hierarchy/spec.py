@@ -16,8 +16,8 @@ import argparse
 import difflib
 import json
 import math
-import re
 import os
+import re
 import sys
 from dataclasses import dataclass, replace
 from pathlib import Path
