@@ -4,19 +4,24 @@ one clear message (place and fix) and exits with status 2."""
 from __future__ import annotations
 
 import argparse
+import contextlib
 import sys
 
 from .errors import HierarchyError, InputError
 
 EXIT_USAGE = 2
+#: A command that could not finish (a failed design, memory ran out).
+EXIT_FAILED = 1
 #: Commands that do matrix work, and so run BLAS on one thread (see blas.py).
 NUMERIC_COMMANDS = {"evaluate", "simulate", "design", "sweep", "phase", "compare"}
 
 
 class _Parser(argparse.ArgumentParser):
     def error(self, message):  # argparse's own errors: same status, no traceback
+        from .errors import terminal_safe
+
         self.print_usage(sys.stderr)
-        print(f"error: {message}", file=sys.stderr)
+        print(terminal_safe(f"error: {message}"), file=sys.stderr)
         raise SystemExit(EXIT_USAGE)
 
 
@@ -533,18 +538,86 @@ def _named_outputs(args) -> list:
     return [(o, p) for o, p in named if p is not None]
 
 
-def _interrupted(args, written: list) -> str:
-    """Where things stand after Ctrl-C: what was written, what was not."""
+class _Stop:
+    """While a command runs, SIGTERM and SIGHUP stop it as Ctrl-C does
+    (finished study points kept, outputs whole or untouched, one message);
+    the exit status is then 128 + the signal's number, as a shell reports.
+    Later signals of the kind are ignored while the command cleans up."""
+
+    def __init__(self):
+        import signal
+
+        self.name, self.number = "Ctrl-C", int(signal.SIGINT)
+        self._saved = {}
+
+    def __enter__(self):
+        import signal
+        import threading
+
+        if threading.current_thread() is threading.main_thread():  # only there can Python handle signals
+            for sig in (getattr(signal, n) for n in ("SIGTERM", "SIGHUP") if hasattr(signal, n)):
+                self._saved[sig] = signal.signal(sig, self._handle)
+        return self
+
+    def _handle(self, signum, frame):
+        import signal
+
+        if self.number != int(signal.SIGINT):
+            return  # already stopping
+        self.name, self.number = signal.Signals(signum).name, int(signum)
+        raise KeyboardInterrupt
+
+    def __exit__(self, *exc):
+        import signal
+
+        for sig, handler in self._saved.items():
+            signal.signal(sig, handler)
+        return False
+
+
+def _interrupted(args, written: list, cause="Ctrl-C") -> str:
+    """Where things stand after Ctrl-C (or the signal ``cause``): what was
+    written, what was not."""
     def listing(paths):
         return ", ".join(paths[:5]) + (f" and {len(paths) - 5} more" if len(paths) > 5 else "")
 
     done = set(written)
     pending = [p for p in _planned_outputs(args) if p not in done]
-    text = f"interrupted (Ctrl-C) during `{args.command}`: "
+    text = f"interrupted ({cause}) during `{args.command}`: "
     text += f"wrote {listing(written)} before the interrupt" if written else "no file was written"
     if pending:
         text += f"; not written: {listing(pending)} (any earlier file there is untouched)"
     return text + ". No file is ever left half-written."
+
+
+class _TerminalSafe:
+    """A text stream that shows, rather than passes on, every character a
+    terminal would obey (see :func:`hierarchy.errors.terminal_safe`): names
+    in a spec reach every table and message, and must not recolour, move
+    the cursor or retitle the user's terminal. ``keep`` lists the controls
+    let through (line breaks; on stderr also ``\r`` for the progress bar)."""
+
+    def __init__(self, stream, keep):
+        self._stream = stream
+        self._keep = keep
+
+    def write(self, text):
+        from .errors import terminal_safe
+
+        return self._stream.write(terminal_safe(text, self._keep))
+
+    def __getattr__(self, name):  # flush, fileno, isatty, encoding, ...
+        return getattr(self._stream, name)
+
+
+@contextlib.contextmanager
+def _terminal_safe_output():
+    saved = sys.stdout, sys.stderr
+    sys.stdout, sys.stderr = _TerminalSafe(saved[0], "\n\t"), _TerminalSafe(saved[1], "\n\t\r")
+    try:
+        yield
+    finally:
+        sys.stdout, sys.stderr = saved
 
 
 def _show_warning(message, category, filename, lineno, file=None, line=None):
@@ -561,23 +634,38 @@ def main(argv=None) -> int:
     from . import io
     from .blas import single_thread
 
+    from .errors import terminal_safe
+
     args = build_parser().parse_args(argv)
     bookmark = io.mark()
+    stop = _Stop()
     try:
         _check_options(args)
         _check_outputs(args)
         # (`check`, `render` and `generate` do no matrix work: they skip the
         # BLAS set-up, which would double the time of a `check`.)
         blas = single_thread() if args.command in NUMERIC_COMMANDS else contextlib.nullcontext()
-        with warnings.catch_warnings(), blas:
+        with warnings.catch_warnings(), blas, _terminal_safe_output(), stop:
             warnings.showwarning = _show_warning
             return args.run(args)
     except HierarchyError as err:
         print(f"error: {err}", file=sys.stderr)
         return EXIT_USAGE
     except KeyboardInterrupt:
-        print(_interrupted(args, io.written_since(bookmark)), file=sys.stderr)
-        return 130
+        print(terminal_safe(_interrupted(args, io.written_since(bookmark), stop.name)), file=sys.stderr)
+        return 128 + stop.number
+    except MemoryError:
+        written = io.written_since(bookmark)
+        print(terminal_safe(f"error: `{args.command}` ran out of memory; "
+                            + (f"it wrote {', '.join(written)} before" if written else
+                               "no file was written (any earlier file is untouched)")
+                            + "\n  fix: use a smaller circuit, close other programs, or run on a machine "
+                              "with more memory"), file=sys.stderr)
+        return EXIT_FAILED
+    except RecursionError:
+        print(f"error: `{args.command}` met a structure nested too deeply to handle\n"
+              "  fix: check the input files (a spec, gains or result is only a few levels deep)", file=sys.stderr)
+        return EXIT_USAGE
     except BrokenPipeError:
         # The reader went away (`hierarchy ... | head`): not an error of ours.
         # Point stdout at devnull so the exit flush does not fail again.
