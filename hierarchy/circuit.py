@@ -57,8 +57,11 @@ def levels(g: nx.DiGraph) -> dict:
     up = nx.DiGraph()
     up.add_nodes_from(g.nodes)
     up.add_edges_from((u, v) for u, v, d in g.edges(data=True) if d["kind"] == RESIDUAL)
-    # Shortest residual path from any sensor gives the level.
-    for node, dist in nx.multi_source_dijkstra_path_length(up, set(level), weight=lambda u, v, d: 1).items():
+    # Shortest residual path from any sensor gives the level (with no
+    # sensor at all, as in a hand-edited result, every area is unreached).
+    sources = set(level)
+    for node, dist in (nx.multi_source_dijkstra_path_length(up, sources, weight=lambda u, v, d: 1).items()
+                       if sources else ()):
         level[node] = dist
     # Areas reached only through other links sit beside their sender.
     changed = True

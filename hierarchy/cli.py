@@ -42,6 +42,67 @@ def _print_warnings(circuit):
         print(f"warning: {w}", file=sys.stderr)
 
 
+#: Seconds between progress lines of a long single design.
+PROGRESS_SECONDS = 5.0
+
+
+def _check_resources(args, specs, evaluate_only=False, processes=1) -> None:
+    """Refuse (unless ``--force``) work beyond the machine's memory; say on
+    stderr when one evaluation alone is slow, before the work starts."""
+    from .resources import check_memory, estimate, fmt_bytes, fmt_seconds
+
+    needs = [estimate(spec, evaluate_only) for spec in specs]
+    worst = max(needs, key=lambda n: n.memory)
+    if not getattr(args, "force", False):
+        check_memory(worst, processes)
+    slow = max(n.evaluation_seconds for n in needs)
+    if not evaluate_only and slow * 100 > 60:
+        print(f"note: one evaluation of this circuit takes about {fmt_seconds(slow)} and needs about "
+              f"{fmt_bytes(worst.memory)}; a design makes hundreds (one to a few per iteration, at most "
+              f"{args.max_iter} iterations), so this may take {fmt_seconds(100 * slow)} or more",
+              file=sys.stderr)
+
+
+class _DesignProgress:
+    """A line on stderr every :data:`PROGRESS_SECONDS` while a design runs:
+    evaluations so far and time taken. Only when ``enabled``."""
+
+    def __init__(self, enabled: bool, label: str):
+        import threading
+
+        self.enabled, self.label = enabled, label
+        self._done = threading.Event()
+        self._thread = None
+
+    def __enter__(self):
+        import threading
+
+        if self.enabled:
+            self._thread = threading.Thread(target=self._run, daemon=True, name="hierarchy-progress")
+            self._thread.start()
+        return self
+
+    def _run(self):
+        import time
+
+        from .problem import EVALUATIONS
+
+        t0, n0 = time.monotonic(), EVALUATIONS[0]
+        while not self._done.wait(PROGRESS_SECONDS):
+            print(f"{self.label}: {EVALUATIONS[0] - n0} evaluations, {time.monotonic() - t0:.0f} s so far",
+                  file=sys.stderr, flush=True)
+
+    def __exit__(self, *exc):
+        self._done.set()
+        if self._thread is not None:
+            self._thread.join()
+        return False
+
+
+def _progress_wanted(args) -> bool:
+    return bool(getattr(args, "progress", False)) or (sys.stderr.isatty() and not getattr(args, "no_progress", False))
+
+
 def cmd_check(args) -> int:
     from .circuit import by_level
 
@@ -84,6 +145,7 @@ def cmd_evaluate(args) -> int:
     from .results import scores_text, scores_to_dict, write_json
 
     c = _load(args.spec)
+    _check_resources(args, [c.spec], evaluate_only=True)
     gains = with_pins(c.spec, _gains(c, args.gains))
     scores = evaluate(c.spec, gains)
     print(scores_text(c.spec, scores, gains))
@@ -100,6 +162,7 @@ def cmd_simulate(args) -> int:
     from .simulate import compare, simulate
 
     c = _load(args.spec)
+    _check_resources(args, [c.spec], evaluate_only=True)
     gains = _gains(c, args.gains)
     if args.steps < 100 or args.chains < 2:
         raise InputError("too few steps or chains for an interval", place="--steps/--chains",
@@ -132,8 +195,10 @@ def cmd_design(args) -> int:
         from .render import check_path
 
         check_path(args.plot)
+    _check_resources(args, [c.spec])
     opts = Options(restarts=args.restarts, max_iter=args.max_iter, seed=args.seed)
-    result = c.design(opts, start=start, compare_unpinned=not args.no_reference)
+    with _DesignProgress(_progress_wanted(args), "design"):
+        result = c.design(opts, start=start, compare_unpinned=not args.no_reference)
     print(result_text(result))
     if args.json:
         write_json(args.json, result.to_dict())
@@ -178,6 +243,7 @@ def _study_setup(args, specs, kind, show=(), coords=()):
     if plot:
         check_plot_path(plot)
     check_columns(specs, show, coords)
+    _check_resources(args, specs, processes=1 if args.dask else (args.workers or 1))
     return Options(restarts=args.restarts, max_iter=args.max_iter, seed=args.seed), base, plot
 
 
@@ -263,6 +329,12 @@ def _study_arguments(s, kind):
     s.add_argument("--restarts", type=int, default=4, help="starting points of a cold design (default 4)")
     s.add_argument("--max-iter", type=int, default=3000, help="solver iteration limit (default 3000)")
     s.add_argument("--seed", type=int, default=0, help="seed of the random starts")
+    _force_argument(s)
+
+
+def _force_argument(s):
+    s.add_argument("--force", action="store_true",
+                   help="go on even when the estimated memory exceeds what the machine has available")
 
 
 def build_parser() -> argparse.ArgumentParser:
@@ -278,6 +350,7 @@ def build_parser() -> argparse.ArgumentParser:
     s.add_argument("spec")
     s.add_argument("--gains", help="gains file (JSON); not needed when the spec pins every gain")
     s.add_argument("--json", metavar="PATH", help="also write the scores as JSON")
+    _force_argument(s)
     s.set_defaults(run=cmd_evaluate)
 
     s = sub.add_parser("simulate", help="Monte-Carlo run beside the exact scores")
@@ -288,6 +361,7 @@ def build_parser() -> argparse.ArgumentParser:
     s.add_argument("--seed", type=int, default=0)
     s.add_argument("--level", type=float, default=0.99, help="interval level (default 0.99)")
     s.add_argument("--json", metavar="PATH")
+    _force_argument(s)
     s.set_defaults(run=cmd_simulate)
 
     s = sub.add_parser("design", help="optimal gains under the spec's prices or budgets")
@@ -301,6 +375,10 @@ def build_parser() -> argparse.ArgumentParser:
     s.add_argument("--seed", type=int, default=0, help="seed of the random starts")
     s.add_argument("--no-reference", action="store_true",
                    help="with pinned gains, skip designing the all-free circuit for comparison")
+    _force_argument(s)
+    s.add_argument("--progress", action="store_true",
+                   help=f"a progress line on stderr every {PROGRESS_SECONDS:g} s (default: only on a terminal)")
+    s.add_argument("--no-progress", action="store_true", help="no progress lines, even on a terminal")
     s.set_defaults(run=cmd_design)
 
     s = sub.add_parser("render", help="draw a designed circuit from its result JSON",
