@@ -230,4 +230,14 @@ def write_spec(path, **kwargs) -> None:
     --------
     >>> write_spec("big.yaml", areas=32, levels=16, density=0.175, seed=0)   # doctest: +SKIP
     """
-    atomic_write_text(path, generate_spec_text(**kwargs))
+    from .errors import SpecError
+    from .spec import parse_spec
+
+    text = generate_spec_text(**kwargs)
+    try:  # some limits (the links' total size) depend on the random draw
+        parse_spec(text)
+    except SpecError as err:
+        raise InputError(f"the circuit drawn is not a valid spec ({err.message}); nothing was written",
+                         place="--areas/--area-dim/--density",
+                         fix="use fewer or smaller areas, or a lower --density") from None
+    atomic_write_text(path, text)
