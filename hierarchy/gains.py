@@ -305,6 +305,9 @@ def load_gains(path, spec: Spec | None = None) -> Gains:
     except json.JSONDecodeError as exc:
         raise GainsError(f"not valid JSON ({exc.msg})", place=f"{path} line {exc.lineno}",
                          fix="fix the JSON syntax") from None
+    except ValueError as exc:  # an integer of thousands of digits
+        raise GainsError(f"a value cannot be read ({exc})", place=str(path),
+                         fix="write numbers with at most a few dozen digits") from None
     gains = gains_from_dict(data, source=str(path))
     if spec is not None:
         gains = check_gains(spec, with_pins(spec, gains), source=str(path))

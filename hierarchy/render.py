@@ -119,6 +119,9 @@ def read_result(path) -> dict:
     except RecursionError:
         raise InputError("the JSON is nested too deeply", place=path,
                          fix="give a result written by `hierarchy design SPEC --json PATH`") from None
+    except ValueError as err:  # an integer of thousands of digits
+        raise InputError(f"a value cannot be read ({err})", place=path,
+                         fix="give a result written by `hierarchy design SPEC --json PATH`") from None
     _check_result(data, path)
     return data
 
@@ -147,6 +150,35 @@ def _check_result(data, place) -> None:
         power = row.get("power")
         if not isinstance(power, (int, float)) or isinstance(power, bool) or not math.isfinite(power):
             raise InputError(f"link '{lid}' has no finite power", place=f"{place}: links.{lid}.power", fix=fix)
+        for key in ("snr", "bits"):
+            _optional_number(row.get(key), f"{place}: links.{lid}.{key}", fix)
+        if not isinstance(row.get("share_of_budget") or {}, dict):
+            raise InputError("the shares of budget are not an object", place=f"{place}: links.{lid}", fix=fix)
+        for b, share in (row.get("share_of_budget") or {}).items():
+            _optional_number(share, f"{place}: links.{lid}.share_of_budget.{b}", fix)
+    # What the title and the boxes print: numbers, text or nothing.
+    for name, area in data["areas"].items():
+        if not isinstance(area, dict):
+            raise InputError(f"area '{name}' is not an object", place=f"{place}: areas.{name}", fix=fix)
+        _optional_number(area.get("error"), f"{place}: areas.{name}.error", fix)
+    _optional_number(data.get("objective"), f"{place}: objective", fix)
+    for key in ("spec", "status", "form"):
+        if data.get(key) is not None and not isinstance(data[key], str):
+            raise InputError(f"the result's '{key}' is not text", place=f"{place}: {key}", fix=fix)
+    budgets = data.get("budgets") or {}
+    if not isinstance(budgets, dict) or not all(isinstance(r, dict) for r in budgets.values()):
+        raise InputError("the result's budgets are not an object of objects", place=f"{place}: budgets", fix=fix)
+    for b, row in budgets.items():
+        for key in ("used", "total", "shadow_price"):
+            _optional_number(row.get(key), f"{place}: budgets.{b}.{key}", fix)
+
+
+def _optional_number(value, place, fix) -> None:
+    """``None`` (shown as infinite) or a real number; anything else is refused."""
+    if value is not None and (isinstance(value, bool) or not isinstance(value, (int, float))
+                              or math.isnan(value)):
+        raise InputError(f"expected a number, got {type(value).__name__} {str(value)[:40]!r}", place=place,
+                         fix=fix)
 
 
 def _as_dict(result, spec):

@@ -303,6 +303,12 @@ def _read_yaml(text: str, where: str) -> _At:
                             fix="start the file with `spec: 1`")
     except yaml.YAMLError as err:
         raise _yaml_error(err, where) from None
+    except SpecError:
+        raise
+    except ValueError as err:  # e.g. an integer of thousands of digits
+        raise SpecError(f"a value cannot be read ({err})", place=where,
+                        fix="write numbers with at most a few dozen digits "
+                            "(1e12, not 1000000000000...)") from None
     except RecursionError:
         raise SpecError("the document is nested too deeply", place=where,
                         fix="flatten the structure; a spec is only a few "
