@@ -4,19 +4,24 @@ one clear message (place and fix) and exits with status 2."""
 from __future__ import annotations
 
 import argparse
+import contextlib
 import sys
 
 from .errors import HierarchyError, InputError
 
 EXIT_USAGE = 2
+#: A command that could not finish (a failed design, memory ran out).
+EXIT_FAILED = 1
 #: Commands that do matrix work, and so run BLAS on one thread (see blas.py).
 NUMERIC_COMMANDS = {"evaluate", "simulate", "design", "sweep", "phase", "compare"}
 
 
 class _Parser(argparse.ArgumentParser):
     def error(self, message):  # argparse's own errors: same status, no traceback
+        from .errors import terminal_safe
+
         self.print_usage(sys.stderr)
-        print(f"error: {message}", file=sys.stderr)
+        print(terminal_safe(f"error: {message}"), file=sys.stderr)
         raise SystemExit(EXIT_USAGE)
 
 
@@ -35,6 +40,67 @@ def _gains(circuit, path):
 def _print_warnings(circuit):
     for w in circuit.warnings:
         print(f"warning: {w}", file=sys.stderr)
+
+
+#: Seconds between progress lines of a long single design.
+PROGRESS_SECONDS = 5.0
+
+
+def _check_resources(args, specs, evaluate_only=False, processes=1) -> None:
+    """Refuse (unless ``--force``) work beyond the machine's memory; say on
+    stderr when one evaluation alone is slow, before the work starts."""
+    from .resources import check_memory, estimate, fmt_bytes, fmt_seconds
+
+    needs = [estimate(spec, evaluate_only) for spec in specs]
+    worst = max(needs, key=lambda n: n.memory)
+    if not getattr(args, "force", False):
+        check_memory(worst, processes)
+    slow = max(n.evaluation_seconds for n in needs)
+    if not evaluate_only and slow * 100 > 60:
+        print(f"note: one evaluation of this circuit takes about {fmt_seconds(slow)} and needs about "
+              f"{fmt_bytes(worst.memory)}; a design makes hundreds (one to a few per iteration, at most "
+              f"{args.max_iter} iterations), so this may take {fmt_seconds(100 * slow)} or more",
+              file=sys.stderr)
+
+
+class _DesignProgress:
+    """A line on stderr every :data:`PROGRESS_SECONDS` while a design runs:
+    evaluations so far and time taken. Only when ``enabled``."""
+
+    def __init__(self, enabled: bool, label: str):
+        import threading
+
+        self.enabled, self.label = enabled, label
+        self._done = threading.Event()
+        self._thread = None
+
+    def __enter__(self):
+        import threading
+
+        if self.enabled:
+            self._thread = threading.Thread(target=self._run, daemon=True, name="hierarchy-progress")
+            self._thread.start()
+        return self
+
+    def _run(self):
+        import time
+
+        from .problem import EVALUATIONS
+
+        t0, n0 = time.monotonic(), EVALUATIONS[0]
+        while not self._done.wait(PROGRESS_SECONDS):
+            print(f"{self.label}: {EVALUATIONS[0] - n0} evaluations, {time.monotonic() - t0:.0f} s so far",
+                  file=sys.stderr, flush=True)
+
+    def __exit__(self, *exc):
+        self._done.set()
+        if self._thread is not None:
+            self._thread.join()
+        return False
+
+
+def _progress_wanted(args) -> bool:
+    return bool(getattr(args, "progress", False)) or (sys.stderr.isatty() and not getattr(args, "no_progress", False))
 
 
 def cmd_check(args) -> int:
@@ -79,6 +145,7 @@ def cmd_evaluate(args) -> int:
     from .results import scores_text, scores_to_dict, write_json
 
     c = _load(args.spec)
+    _check_resources(args, [c.spec], evaluate_only=True)
     gains = with_pins(c.spec, _gains(c, args.gains))
     scores = evaluate(c.spec, gains)
     print(scores_text(c.spec, scores, gains))
@@ -95,6 +162,7 @@ def cmd_simulate(args) -> int:
     from .simulate import compare, simulate
 
     c = _load(args.spec)
+    _check_resources(args, [c.spec], evaluate_only=True)
     gains = _gains(c, args.gains)
     if args.steps < 100 or args.chains < 2:
         raise InputError("too few steps or chains for an interval", place="--steps/--chains",
@@ -127,8 +195,10 @@ def cmd_design(args) -> int:
         from .render import check_path
 
         check_path(args.plot)
+    _check_resources(args, [c.spec])
     opts = Options(restarts=args.restarts, max_iter=args.max_iter, seed=args.seed)
-    result = c.design(opts, start=start, compare_unpinned=not args.no_reference)
+    with _DesignProgress(_progress_wanted(args), "design"):
+        result = c.design(opts, start=start, compare_unpinned=not args.no_reference)
     print(result_text(result))
     if args.json:
         write_json(args.json, result.to_dict())
@@ -212,6 +282,7 @@ def _study_setup(args, specs, kind, show=(), coords=()):
     if plot:
         check_plot_path(plot)
     check_columns(specs, show, coords)
+    _check_resources(args, specs, processes=1 if args.dask else (args.workers or 1))
     return Options(restarts=args.restarts, max_iter=args.max_iter, seed=args.seed), base, plot
 
 
@@ -300,6 +371,12 @@ def _study_arguments(s, kind):
     s.add_argument("--restarts", type=int, default=4, help="starting points of a cold design (default 4)")
     s.add_argument("--max-iter", type=int, default=3000, help="solver iteration limit (default 3000)")
     s.add_argument("--seed", type=int, default=0, help="seed of the random starts")
+    _force_argument(s)
+
+
+def _force_argument(s):
+    s.add_argument("--force", action="store_true",
+                   help="go on even when the estimated memory exceeds what the machine has available")
 
 
 def build_parser() -> argparse.ArgumentParser:
@@ -315,6 +392,7 @@ def build_parser() -> argparse.ArgumentParser:
     s.add_argument("spec")
     s.add_argument("--gains", help="gains file (JSON); not needed when the spec pins every gain")
     s.add_argument("--json", metavar="PATH", help="also write the scores as JSON")
+    _force_argument(s)
     s.set_defaults(run=cmd_evaluate)
 
     s = sub.add_parser("simulate", help="Monte-Carlo run beside the exact scores")
@@ -325,6 +403,7 @@ def build_parser() -> argparse.ArgumentParser:
     s.add_argument("--seed", type=int, default=0)
     s.add_argument("--level", type=float, default=0.99, help="interval level (default 0.99)")
     s.add_argument("--json", metavar="PATH")
+    _force_argument(s)
     s.set_defaults(run=cmd_simulate)
 
     s = sub.add_parser("design", help="optimal gains under the spec's prices or budgets")
@@ -338,6 +417,10 @@ def build_parser() -> argparse.ArgumentParser:
     s.add_argument("--seed", type=int, default=0, help="seed of the random starts")
     s.add_argument("--no-reference", action="store_true",
                    help="with pinned gains, skip designing the all-free circuit for comparison")
+    _force_argument(s)
+    s.add_argument("--progress", action="store_true",
+                   help=f"a progress line on stderr every {PROGRESS_SECONDS:g} s (default: only on a terminal)")
+    s.add_argument("--no-progress", action="store_true", help="no progress lines, even on a terminal")
     s.set_defaults(run=cmd_design)
 
     s = sub.add_parser("render", help="draw a designed circuit from its result JSON",
@@ -466,18 +549,203 @@ def _check_outputs(args) -> None:
         seen[key] = ("output", path)
 
 
-def _interrupted(args, written: list) -> str:
-    """Where things stand after Ctrl-C: what was written, what was not."""
+# ---------------------------------------------------------------------------
+# option checks: every option is checked here, before any file is read or
+# anything is computed (exit 2 with one message)
+
+#: Bounds of the numeric options; each is far beyond any sensible use, and
+#: keeps the work a command can be asked for finite.
+MAX_WORKERS = 256
+MAX_RESTARTS = 1000
+MAX_ITER = 10_000_000
+MAX_SEED = 2**63 - 1
+MAX_CHAINS = 1000
+MAX_STEPS = 100_000_000
+MAX_CHAIN_STEPS = 1_000_000_000  # chains x steps
+#: Study values (--from/--to, ranges) are spec values, bounded like them.
+MAX_VALUE = 1e12
+
+
+def _bad_option(option, message, fix):
+    raise InputError(message, place=option, fix=fix)
+
+
+def _int_between(args, name, option, lo, hi):
+    value = getattr(args, name, None)
+    if value is not None and not lo <= value <= hi:
+        _bad_option(option, f"must be a whole number from {lo:,} to {hi:,}; got {value:,}",
+                    f"give {option} a value from {lo:,} to {hi:,}")
+
+
+def _study_value(value, option):
+    import math
+
+    if not (math.isfinite(value) and abs(value) <= MAX_VALUE):
+        _bad_option(option, f"a study value must be a finite number of at most {MAX_VALUE:g} in size; "
+                            f"got {value:g}", f"give {option} a value between -{MAX_VALUE:g} and {MAX_VALUE:g}")
+
+
+def _check_input_path(path, option):
+    if not isinstance(path, str):  # absent, or sweep's --from (dest `start`), a number
+        return
+    if not path:
+        _bad_option(option, "the input path is empty", "give the path of a file")
+    if path.endswith("/") and not __import__("os").path.isdir(path):  # Path() would silently drop it
+        _bad_option(option, "an input file's path cannot end with '/'", "give the path of a file, without a "
+                                                                         "trailing '/'")
+
+
+def _check_options(args) -> None:
+    """Every option of ``args`` within its bounds; output paths writable."""
+    import math
+
+    from .io import check_output
+
+    for name, option in (("spec", "SPEC"), ("gains", "--gains"), ("start", "--start"), ("result", "RESULT")):
+        if not (name == "gains" and args.command == "design"):
+            _check_input_path(getattr(args, name, None), option)
+    for path in getattr(args, "specs", None) or []:
+        _check_input_path(path, "SPEC")
+    _int_between(args, "workers", "--workers", 1, MAX_WORKERS)
+    _int_between(args, "restarts", "--restarts", 1, MAX_RESTARTS)
+    _int_between(args, "max_iter", "--max-iter", 1, MAX_ITER)
+    _int_between(args, "seed", "--seed", 0, MAX_SEED)
+    if args.command == "simulate":
+        _int_between(args, "chains", "--chains", 2, MAX_CHAINS)
+        _int_between(args, "steps", "--steps", 100, MAX_STEPS)
+        if args.chains * args.steps > MAX_CHAIN_STEPS:
+            _bad_option("--steps/--chains", f"{args.chains:,} chains x {args.steps:,} steps is more than "
+                                            f"{MAX_CHAIN_STEPS:,} steps in all",
+                        "use fewer chains or fewer steps per chain")
+        if not 0 < args.level < 1:
+            _bad_option("--level", f"an interval level is a fraction between 0 and 1; got {args.level:g}",
+                        "use e.g. --level 0.99")
+    if args.command == "compare":
+        if len(args.specs) < 2:
+            _bad_option("SPEC", "a comparison needs at least two specs; got one",
+                        "give two or more specs, or use `hierarchy design` or `sweep` for one")
+        if not (math.isfinite(args.tie) and 0 <= args.tie < 1):
+            _bad_option("--tie", f"a relative tolerance is a number from 0 to below 1; got {args.tie:g}",
+                        "use e.g. --tie 1e-5")
+    if args.command == "sweep":
+        _study_value(args.start, "--from")
+        _study_value(args.stop, "--to")
+    if args.command in ("phase", "compare"):
+        from .studies import parse_range
+
+        for option in ("--x-range", "--y-range") if args.command == "phase" else ("--budgets",):
+            lo, hi, _ = parse_range(getattr(args, option[2:].replace("-", "_")), option)
+            _study_value(lo, option)
+            _study_value(hi, option)
+    for option, path in _named_outputs(args):
+        check_output(path, option)
+
+
+def _named_outputs(args) -> list:
+    """``(option, path)`` of every file this command was asked to write."""
+    named = [("--json", getattr(args, "json", None)), ("--plot", getattr(args, "plot", None))]
+    if args.command == "design":
+        named.append(("--gains", args.gains))
+    if args.command == "render":
+        named.append(("--output", _render_output(args)))
+    elif args.command == "generate":
+        named.append(("--output", args.output))
+    if args.command in ("sweep", "phase", "compare"):
+        import os
+
+        if args.out is not None and not args.out:
+            _bad_option("--out", "the output path is empty", "give a base name, e.g. results/run")
+        first = args.spec if args.command != "compare" else args.specs[0]
+        base = args.out or f"{os.path.splitext(os.path.basename(first))[0]}-{args.command}"
+        if os.path.splitext(base)[1].lower() in (".csv", ".json"):
+            base = os.path.splitext(base)[0]
+        named += [("--out", f"{base}.csv"), ("--out", f"{base}.json")]
+        if os.path.exists(f"{base}.parts") and not os.path.isdir(f"{base}.parts"):
+            _bad_option("--out", f"{base}.parts exists and is not a folder (it keeps a study's finished points)",
+                        "move that file away, or choose another --out")
+    return [(o, p) for o, p in named if p is not None]
+
+
+class _Stop:
+    """While a command runs, SIGTERM and SIGHUP stop it as Ctrl-C does
+    (finished study points kept, outputs whole or untouched, one message);
+    the exit status is then 128 + the signal's number, as a shell reports.
+    Later signals of the kind are ignored while the command cleans up."""
+
+    def __init__(self):
+        import signal
+
+        self.name, self.number = "Ctrl-C", int(signal.SIGINT)
+        self._saved = {}
+
+    def __enter__(self):
+        import signal
+        import threading
+
+        if threading.current_thread() is threading.main_thread():  # only there can Python handle signals
+            for sig in (getattr(signal, n) for n in ("SIGTERM", "SIGHUP") if hasattr(signal, n)):
+                self._saved[sig] = signal.signal(sig, self._handle)
+        return self
+
+    def _handle(self, signum, frame):
+        import signal
+
+        if self.number != int(signal.SIGINT):
+            return  # already stopping
+        self.name, self.number = signal.Signals(signum).name, int(signum)
+        raise KeyboardInterrupt
+
+    def __exit__(self, *exc):
+        import signal
+
+        for sig, handler in self._saved.items():
+            signal.signal(sig, handler)
+        return False
+
+
+def _interrupted(args, written: list, cause="Ctrl-C") -> str:
+    """Where things stand after Ctrl-C (or the signal ``cause``): what was
+    written, what was not."""
     def listing(paths):
         return ", ".join(paths[:5]) + (f" and {len(paths) - 5} more" if len(paths) > 5 else "")
 
     done = set(written)
     pending = [p for p in _planned_outputs(args) if p not in done]
-    text = f"interrupted (Ctrl-C) during `{args.command}`: "
+    text = f"interrupted ({cause}) during `{args.command}`: "
     text += f"wrote {listing(written)} before the interrupt" if written else "no file was written"
     if pending:
         text += f"; not written: {listing(pending)} (any earlier file there is untouched)"
     return text + ". No file is ever left half-written."
+
+
+class _TerminalSafe:
+    """A text stream that shows, rather than passes on, every character a
+    terminal would obey (see :func:`hierarchy.errors.terminal_safe`): names
+    in a spec reach every table and message, and must not recolour, move
+    the cursor or retitle the user's terminal. ``keep`` lists the controls
+    let through (line breaks; on stderr also ``\r`` for the progress bar)."""
+
+    def __init__(self, stream, keep):
+        self._stream = stream
+        self._keep = keep
+
+    def write(self, text):
+        from .errors import terminal_safe
+
+        return self._stream.write(terminal_safe(text, self._keep))
+
+    def __getattr__(self, name):  # flush, fileno, isatty, encoding, ...
+        return getattr(self._stream, name)
+
+
+@contextlib.contextmanager
+def _terminal_safe_output():
+    saved = sys.stdout, sys.stderr
+    sys.stdout, sys.stderr = _TerminalSafe(saved[0], "\n\t"), _TerminalSafe(saved[1], "\n\t\r")
+    try:
+        yield
+    finally:
+        sys.stdout, sys.stderr = saved
 
 
 def _show_warning(message, category, filename, lineno, file=None, line=None):
@@ -494,22 +762,38 @@ def main(argv=None) -> int:
     from . import io
     from .blas import single_thread
 
+    from .errors import terminal_safe
+
     args = build_parser().parse_args(argv)
     bookmark = io.mark()
+    stop = _Stop()
     try:
+        _check_options(args)
         _check_outputs(args)
         # (`check`, `render` and `generate` do no matrix work: they skip the
         # BLAS set-up, which would double the time of a `check`.)
         blas = single_thread() if args.command in NUMERIC_COMMANDS else contextlib.nullcontext()
-        with warnings.catch_warnings(), blas:
+        with warnings.catch_warnings(), blas, _terminal_safe_output(), stop:
             warnings.showwarning = _show_warning
             return args.run(args)
     except HierarchyError as err:
         print(f"error: {err}", file=sys.stderr)
         return EXIT_USAGE
     except KeyboardInterrupt:
-        print(_interrupted(args, io.written_since(bookmark)), file=sys.stderr)
-        return 130
+        print(terminal_safe(_interrupted(args, io.written_since(bookmark), stop.name)), file=sys.stderr)
+        return 128 + stop.number
+    except MemoryError:
+        written = io.written_since(bookmark)
+        print(terminal_safe(f"error: `{args.command}` ran out of memory; "
+                            + (f"it wrote {', '.join(written)} before" if written else
+                               "no file was written (any earlier file is untouched)")
+                            + "\n  fix: use a smaller circuit, close other programs, or run on a machine "
+                              "with more memory"), file=sys.stderr)
+        return EXIT_FAILED
+    except RecursionError:
+        print(f"error: `{args.command}` met a structure nested too deeply to handle\n"
+              "  fix: check the input files (a spec, gains or result is only a few levels deep)", file=sys.stderr)
+        return EXIT_USAGE
     except BrokenPipeError:
         # The reader went away (`hierarchy ... | head`): not an error of ours.
         # Point stdout at devnull so the exit flush does not fail again.

@@ -7,6 +7,8 @@ to change. The CLI prints ``str(err)`` and exits with status 2; no traceback.
 
 from __future__ import annotations
 
+import re
+
 
 class HierarchyError(Exception):
     """Base class of every error the tool reports to a user.
@@ -51,6 +53,26 @@ def printable(text) -> str:
     if text.isprintable():
         return text
     return "".join(c if c.isprintable() else repr(c)[1:-1] for c in text)
+
+
+#: Characters a terminal may obey rather than show: C0 and C1 controls
+#: (ESC starts colour, cursor and title sequences), DEL, and the invisible
+#: format characters that reorder or hide text (bidirectional overrides,
+#: zero-width marks). Line breaks and tabs are kept by :func:`terminal_safe`.
+_OBEYED = re.compile("[\x00-\x08\x0b-\x1f\x7f-\x9f\u200b-\u200f\u2028-\u202e\u2060-\u2069\ufeff]")
+
+
+def terminal_safe(text: str, keep: str = "\n\t") -> str:
+    r"""``text`` with every character a terminal would obey (escape sequences,
+    cursor moves, bidirectional overrides) written as a visible escape,
+    except those in ``keep``.
+
+    Examples
+    --------
+    >>> print(terminal_safe("area \x1b[31mred\x1b[0m"))
+    area \x1b[31mred\x1b[0m
+    """
+    return _OBEYED.sub(lambda m: m.group() if m.group() in keep else repr(m.group())[1:-1], text)
 
 
 class SpecError(HierarchyError, ValueError):

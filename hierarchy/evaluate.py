@@ -20,6 +20,15 @@ from .model import Spec
 
 #: A closed loop must have spectral radius below this to count as stable.
 STABLE_RADIUS = 1.0 - 1e-9
+#: Final scores are refused when the Lyapunov residual
+#: ``||Sigma - Phi Sigma Phi' - Gamma Omega Gamma'||_F`` exceeds this times
+#: ``||Sigma||_F + ||Phi Sigma Phi'||_F + ||Gamma Omega Gamma'||_F``.
+RESIDUAL_RTOL = 1e-6
+#: ... or when ``Cov(q)`` has an eigenvalue below ``-PSD_RTOL`` times its
+#: largest diagonal entry (a covariance is positive semidefinite); a mean
+#: square below zero by less than ``PSD_RTOL * scale * ||rows||^2`` is
+#: rounding and is reported as 0.
+PSD_RTOL = 1e-8
 
 
 def spectral_radius(M: np.ndarray) -> float:
@@ -407,7 +416,83 @@ def score(layout: Layout, gains: Gains, prices=None) -> Scores:
         snr = power / npow if npow > 0 else (float("inf") if power > 0 else 0.0)
         links[l.id] = LinkScore(l.kind, power, npow, snr, bits[ll.index], float(prices[ll.index]))
         eng += prices[ll.index] * power
-    return Scores(werr + eng + act, werr, eng, act, radius, areas, links)
+    return check_scores(layout, gains, sol.Sigma,
+                        Scores(werr + eng + act, werr, eng, act, radius, areas, links))
+
+
+def _ill_conditioned(what: str) -> UnstableError:
+    return UnstableError(
+        f"the closed loop is too badly conditioned to evaluate: {what}",
+        place="gains",
+        fix="use gains of a sensible size (entries far below 1e12, no near-cancelling loops); "
+            "`hierarchy design` finds well-behaved gains")
+
+
+def check_scores(layout: Layout, gains: Gains, Sigma: np.ndarray, scores: Scores) -> Scores:
+    """Check final scores before anyone sees them, independently of the
+    fast path that computed them: ``Sigma`` must solve the Lyapunov equation
+    of the loop assembled afresh from ``gains`` (relative residual at most
+    :data:`RESIDUAL_RTOL`), ``Cov(q)`` must be positive semidefinite (to
+    :data:`PSD_RTOL`), and every error, prior, activity and power must be a
+    non-negative finite number. Rounding-sized negatives become 0.
+
+    Called once per reported design (not in the optimiser's loop): it costs
+    about one extra covariance product.
+
+    Raises
+    ------
+    UnstableError
+        Naming the check that failed, when the numbers cannot be trusted.
+    """
+    from .closedloop import assemble
+
+    loop = assemble(layout, gains)
+    Omega = layout.Omega
+    noise = loop.Gamma @ Omega @ loop.Gamma.T
+    moved = loop.Phi @ Sigma @ loop.Phi.T
+    size = np.linalg.norm(Sigma) + np.linalg.norm(moved) + np.linalg.norm(noise)
+    if not np.isfinite(size):
+        raise _ill_conditioned("its covariances overflow")
+    residual = np.linalg.norm(Sigma - moved - noise)
+    if residual > RESIDUAL_RTOL * size:
+        raise _ill_conditioned(f"the stationary covariance solves its Lyapunov equation only to a relative "
+                               f"residual of {residual / size:.2g} (at most {RESIDUAL_RTOL:g} is trusted)")
+    scale = max(float(np.max(np.diag(Sigma), initial=0.0)), float(np.max(np.diag(Omega), initial=0.0)))
+    nxi = layout.nxi
+    if nxi and scale > 0:
+        try:
+            np.linalg.cholesky(Sigma + PSD_RTOL * scale * np.eye(nxi))
+        except np.linalg.LinAlgError:
+            raise _ill_conditioned(f"its state covariance is not positive semidefinite (an eigenvalue below "
+                                   f"-{PSD_RTOL:g} times the largest variance)") from None
+
+    def checked(value, rows, what):
+        if value is None:
+            return None
+        tol = PSD_RTOL * scale * float(np.sum(rows * rows))
+        if not np.isfinite(value) or value < -tol:
+            raise _ill_conditioned(f"{what} comes out as {value:.3g}, but a mean square cannot be negative")
+        return max(float(value), 0.0)
+
+    spec = layout.spec
+    for a in spec.areas:
+        sc = scores.areas[a.name]
+        if a.has_target:
+            sc.error = checked(sc.error, layout.error_map[a.name], f"the error of area `{a.name}`")
+            target = layout.target_map[a.name]
+            sc.prior = checked(sc.prior, target, f"the prior error of area `{a.name}`")
+        sc.activity = checked(sc.activity, layout.state_rows(a.name), f"the activity of area `{a.name}`")
+    for ll, l in zip(layout.links, spec.links):
+        ls = scores.links[l.id]
+        ls.power = checked(ls.power, loop.sent[ll.index], f"the power of link `{l.id}`")
+        if not ls.bits >= -PSD_RTOL:  # nan fails too
+            raise _ill_conditioned(f"the information rate of link `{l.id}` comes out as {ls.bits:.3g} bits")
+        ls.bits = max(ls.bits, 0.0)
+    for name in ("weighted_error", "energy_cost", "activity_cost", "objective"):
+        value = getattr(scores, name)
+        if not np.isfinite(value):
+            raise _ill_conditioned(f"the {name.replace('_', ' ')} comes out as {value}")
+    return scores
 
 
 def evaluate(spec: Spec, gains: Gains | None = None) -> Scores:

@@ -278,18 +278,24 @@ def load_gains(path, spec: Spec | None = None) -> Gains:
     --------
     >>> g = load_gains("specs/single-loop.gains.json", spec)   # doctest: +SKIP
     """
+    from .io import ReadRefused, read_text
+
     try:
-        with open(path, encoding="utf-8") as fh:
-            text = fh.read(MAX_GAINS_FILE + 1)
-        if len(text) > MAX_GAINS_FILE:
-            raise GainsError(f"the file is too large (more than {MAX_GAINS_FILE:,} characters)",
-                             place=str(path), fix="a gains file holds one design; check the path")
-        data = json.loads(text)
-    except FileNotFoundError:
-        raise GainsError("file not found", place=str(path), fix="check the path to the gains file") from None
-    except IsADirectoryError:
-        raise GainsError("this is a folder, not a gains file", place=str(path),
-                         fix="give the path of a .json gains file") from None
+        data = json.loads(read_text(path, MAX_GAINS_FILE))
+    except ReadRefused as err:
+        if err.reason == "missing":
+            raise GainsError("file not found", place=str(path), fix="check the path to the gains file") from None
+        if err.reason == "folder":
+            raise GainsError("this is a folder, not a gains file", place=str(path),
+                             fix="give the path of a .json gains file") from None
+        if err.reason == "too large":
+            raise GainsError(f"the file is too large (more than {MAX_GAINS_FILE:,} bytes)",
+                             place=str(path), fix="a gains file holds one design; check the path") from None
+        if err.reason == "not regular":
+            raise GainsError(f"the gains file is not a regular file ({err})", place=str(path),
+                             fix="save the gains to a file and give its path") from None
+        raise GainsError(f"cannot read it ({err})", place=str(path),
+                         fix="check the file's permissions and that it is a text file") from None
     except RecursionError:
         raise GainsError("the JSON is nested too deeply", place=str(path),
                          fix="a gains file is only a few levels deep; check the file") from None
@@ -299,6 +305,9 @@ def load_gains(path, spec: Spec | None = None) -> Gains:
     except json.JSONDecodeError as exc:
         raise GainsError(f"not valid JSON ({exc.msg})", place=f"{path} line {exc.lineno}",
                          fix="fix the JSON syntax") from None
+    except ValueError as exc:  # an integer of thousands of digits
+        raise GainsError(f"a value cannot be read ({exc})", place=str(path),
+                         fix="write numbers with at most a few dozen digits") from None
     gains = gains_from_dict(data, source=str(path))
     if spec is not None:
         gains = check_gains(spec, with_pins(spec, gains), source=str(path))

@@ -29,6 +29,7 @@ import numpy as np
 
 from .errors import InputError
 from .io import atomic_write_text
+from .spec import MAX_LAG, MAX_TOTAL_DIM
 
 #: Largest circuit the generator writes (the spec reader's own size limits
 #: would refuse much larger ones anyway).
@@ -73,14 +74,21 @@ def _check_args(areas, levels, density, area_dim, world_dim, max_lag, relays):
         bad("--density", f"density {density:g} is not a fraction", "use a number from 0 to 1")
     if area_dim < 1:
         bad("--area-dim", "an area needs at least one state", "use --area-dim 1 or more")
+    if areas * area_dim > MAX_TOTAL_DIM:  # the spec reader's limit, checked before anything is drawn
+        bad("--area-dim", f"{areas} areas of {area_dim} states are {areas * area_dim:,} states in all, more "
+                          f"than the {MAX_TOTAL_DIM} a spec may hold",
+            f"use --area-dim {max(1, MAX_TOTAL_DIM // areas)} or less, or fewer areas")
+    if world_dim > MAX_TOTAL_DIM:
+        bad("--world-dim", f"a world of {world_dim:,} states is more than the {MAX_TOTAL_DIM} a spec may hold",
+            f"use --world-dim {MAX_TOTAL_DIM} or less")
     if world_dim % levels or world_dim < levels:
         bad("--world-dim", f"world size {world_dim} does not split into {levels} equal tiers",
             f"use a multiple of {levels}")
     if world_dim // levels > area_dim:
         bad("--world-dim", f"each tier has {world_dim // levels} states, more than an area's {area_dim}",
             f"use --world-dim {levels * area_dim} or less, or a larger --area-dim")
-    if max_lag < 0:
-        bad("--max-lag", "a lag cannot be negative", "use 0 or more")
+    if not 0 <= max_lag <= MAX_LAG:
+        bad("--max-lag", f"a lag is from 0 to {MAX_LAG}; got {max_lag}", f"use 0 to {MAX_LAG}")
     if not 0.0 <= relays < 1.0:
         bad("--relays", f"relay fraction {relays:g} is not below 1", "use a number from 0 to below 1")
 
@@ -224,4 +232,14 @@ def write_spec(path, **kwargs) -> None:
     --------
     >>> write_spec("big.yaml", areas=32, levels=16, density=0.175, seed=0)   # doctest: +SKIP
     """
-    atomic_write_text(path, generate_spec_text(**kwargs))
+    from .errors import SpecError
+    from .spec import parse_spec
+
+    text = generate_spec_text(**kwargs)
+    try:  # some limits (the links' total size) depend on the random draw
+        parse_spec(text)
+    except SpecError as err:
+        raise InputError(f"the circuit drawn is not a valid spec ({err.message}); nothing was written",
+                         place="--areas/--area-dim/--density",
+                         fix="use fewer or smaller areas, or a lower --density") from None
+    atomic_write_text(path, text)

@@ -1,4 +1,10 @@
-"""Atomic file output, and paths the tool makes up itself.
+"""Bounded file input, atomic file output, and paths the tool makes up itself.
+
+Every file the tool reads (specs, gains, results, study parts) goes through
+:func:`read_bytes`: regular files only (a named pipe, a device or a socket
+is refused without blocking: the file is opened non-blocking and checked
+with ``fstat`` before any read), and never more than the reader's limit,
+whatever size the system reports.
 
 Every file the tool writes (results, gains, tables, pictures, the schema) is
 written to a temporary file beside the target, flushed to disk and renamed
@@ -18,11 +24,100 @@ from __future__ import annotations
 import contextlib
 import os
 import re
+import stat
 import tempfile
 
 from .errors import InputError
 
 _WRITTEN: list = []
+
+
+class ReadRefused(OSError):
+    """A file :func:`read_bytes` will not read. ``reason`` is one of
+    ``"missing"``, ``"folder"``, ``"not regular"``, ``"too large"`` and
+    ``"unreadable"``; ``str(err)`` says it in words."""
+
+    def __init__(self, reason: str, text: str):
+        super().__init__(text)
+        self.reason = reason
+
+
+def read_bytes(path, limit: int) -> bytes:
+    """The content of the regular file ``path``, at most ``limit`` bytes.
+
+    Raises
+    ------
+    ReadRefused
+        If the file does not exist, is a folder, is not a regular file (a
+        named pipe, a device, a socket), holds more than ``limit`` bytes, or
+        cannot be read. Never blocks on a pipe; never reads past
+        ``limit + 1`` bytes (a device reporting size 0 is refused before any
+        read, and a file growing while it is read is cut off).
+
+    Examples
+    --------
+    >>> import tempfile
+    >>> with tempfile.NamedTemporaryFile(delete=False) as fh:
+    ...     _ = fh.write(b"spec: 1")
+    >>> read_bytes(fh.name, 100)
+    b'spec: 1'
+    >>> read_bytes(fh.name, 3)
+    Traceback (most recent call last):
+    ...
+    hierarchy.io.ReadRefused: the file is larger than 3 bytes
+    >>> read_bytes("/dev/null", 100)
+    Traceback (most recent call last):
+    ...
+    hierarchy.io.ReadRefused: this is a character device, not a regular file
+    """
+    path = os.fspath(path)
+    try:
+        # O_NONBLOCK: opening a FIFO with no writer would otherwise wait forever.
+        fd = os.open(path, os.O_RDONLY | getattr(os, "O_NONBLOCK", 0) | getattr(os, "O_NOCTTY", 0))
+    except FileNotFoundError:
+        raise ReadRefused("missing", "no such file") from None
+    except IsADirectoryError:
+        raise ReadRefused("folder", "this is a folder") from None
+    except NotADirectoryError:  # `spec.yaml/`: a file used as a folder
+        raise ReadRefused("unreadable", "a part of the path is a file, not a folder (a '/' too many?)") from None
+    except OSError as exc:
+        raise ReadRefused("unreadable", exc.strerror or exc.__class__.__name__) from None
+    try:
+        info = os.fstat(fd)
+        if stat.S_ISDIR(info.st_mode):
+            raise ReadRefused("folder", "this is a folder")
+        if not stat.S_ISREG(info.st_mode):
+            raise ReadRefused("not regular", f"this is {_kind(info.st_mode)}, not a regular file")
+        if info.st_size > limit:
+            raise ReadRefused("too large", f"the file is larger than {limit:,} bytes")
+        chunks, got = [], 0
+        while got <= limit:
+            try:
+                chunk = os.read(fd, min(1 << 20, limit + 1 - got))
+            except OSError as exc:
+                raise ReadRefused("unreadable", exc.strerror or exc.__class__.__name__) from None
+            if not chunk:
+                break
+            chunks.append(chunk)
+            got += len(chunk)
+        if got > limit:
+            raise ReadRefused("too large", f"the file is larger than {limit:,} bytes")
+        return b"".join(chunks)
+    finally:
+        os.close(fd)
+
+
+def _kind(mode: int) -> str:
+    for test, name in ((stat.S_ISFIFO, "a named pipe"), (stat.S_ISCHR, "a character device"),
+                       (stat.S_ISBLK, "a block device"), (stat.S_ISSOCK, "a socket")):
+        if test(mode):
+            return name
+    return "a special file"
+
+
+def read_text(path, limit: int) -> str:
+    """:func:`read_bytes` decoded as UTF-8 (``UnicodeDecodeError`` if it is not)."""
+    return read_bytes(path, limit).decode("utf-8")
 
 
 def _umask() -> int:
@@ -45,6 +140,55 @@ def _target_folder(path: str) -> str:
     return folder
 
 
+def _refuse_unsafe_target(path: str) -> None:
+    """An existing target must be a regular file that may be written: a
+    write-protected file is the user's way of saying "keep this"."""
+    try:
+        info = os.stat(path)
+    except OSError:
+        return  # a new file
+    if not stat.S_ISREG(info.st_mode):
+        raise InputError(f"the output exists and is {_kind(info.st_mode)}, not a regular file", place=path,
+                         fix="choose another path")
+    # (os.access alone says yes to root; the mode bits say what the user meant.)
+    if not (info.st_mode & 0o222) or not os.access(path, os.W_OK):
+        raise InputError("the output file is write-protected; it is left as it is", place=path,
+                         fix="choose another path, or make the file writable first (chmod u+w)")
+
+
+def check_output(path, place: str = "output") -> str:
+    """Refuse, before any work, an output path that could not be written:
+    empty, ending in '/', a folder, in a missing or unwritable folder, or an
+    existing file that is write-protected or not a regular file. Nothing is
+    left behind by the check.
+
+    Examples
+    --------
+    >>> check_output("")
+    Traceback (most recent call last):
+    ...
+    hierarchy.errors.InputError: output: the output path is empty
+      fix: give a file name, e.g. result.json
+    """
+    path = os.fspath(path)
+    if not path:
+        raise InputError("the output path is empty", place=place, fix="give a file name, e.g. result.json")
+    if path.endswith(("/", os.sep)):
+        raise InputError("an output path cannot end with '/'", place=path,
+                         fix="give a file name, e.g. " + os.path.join(path, "result.json"))
+    folder = _target_folder(path)
+    _refuse_unsafe_target(path)
+    try:  # the only honest test that the folder takes new files (root, read-only mounts)
+        fd, probe = tempfile.mkstemp(prefix=".tmp-check-", dir=folder)
+    except OSError as exc:
+        raise InputError(f"cannot write in this folder ({exc.strerror or exc.__class__.__name__})",
+                         place=path, fix="check the folder's permissions and free space, "
+                                         "or choose another path") from None
+    os.close(fd)
+    os.unlink(probe)
+    return path
+
+
 @contextlib.contextmanager
 def atomic_writer(path):
     """Open a temporary binary file beside ``path``; on a clean exit, rename it
@@ -61,6 +205,7 @@ def atomic_writer(path):
     """
     path = os.fspath(path)
     folder = _target_folder(path)
+    _refuse_unsafe_target(path)
     try:
         mode = os.stat(path).st_mode & 0o7777
     except OSError:

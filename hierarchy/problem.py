@@ -19,6 +19,10 @@ from .evaluate import area_radius, flat_cost_and_gradient
 from .gains import Gains, gain_shapes, pinned_gains
 from .model import PREDICTION, Spec
 
+#: Evaluations made by every :class:`Problem` of this process, for progress
+#: reports from another thread (see ``hierarchy.cli``); only ever increased.
+EVALUATIONS = [0]
+
 
 def _rms(cov: np.ndarray) -> float:
     k = cov.shape[0]
@@ -160,6 +164,7 @@ class Problem:
         one is set) and its gradient in solver units (``inf, None`` when the
         closed loop is unstable)."""
         self.evaluations += 1
+        EVALUATIONS[0] += 1
         if self.penalty is None:
             J, grad, _ = flat_cost_and_gradient(self.layout, self.flat(theta), self.prices)
         else:

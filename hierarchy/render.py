@@ -84,6 +84,9 @@ MAX_LINK_LABELS = 12
 VIEWS = ("auto", "circuit", "matrix")
 # Where along a link (fraction of its curve) a label may sit, best first.
 _LABEL_SPOTS = (0.5, 0.4, 0.6, 0.3, 0.7, 0.22, 0.78)
+#: A result file is refused above this size (bytes): a 5000-dim design
+#: writes a few megabytes.
+MAX_RESULT_FILE = 50_000_000
 
 _LEVEL_GAP = 2.6  # data units (inches at full size) between levels
 _NODE_GAP = 1.6  # between boxes on one level
@@ -110,20 +113,30 @@ def read_result(path) -> dict:
     >>> sorted(data["links"])                # doctest: +SKIP
     ['probe->station-view', ...]
     """
+    from .io import ReadRefused, read_text
+
     path = os.fspath(path)
     try:
-        with open(path, encoding="utf-8") as fh:
-            text = fh.read()
-    except FileNotFoundError:
-        raise InputError("no such file", place=path, fix="give the path of a result written by "
-                         "`hierarchy design SPEC --json PATH`") from None
-    except (OSError, UnicodeDecodeError) as err:
+        text = read_text(path, MAX_RESULT_FILE)
+    except ReadRefused as err:
+        if err.reason == "missing":
+            raise InputError("no such file", place=path, fix="give the path of a result written by "
+                             "`hierarchy design SPEC --json PATH`") from None
+        raise InputError(f"cannot read the file ({err})", place=path,
+                         fix="give a readable result JSON file") from None
+    except UnicodeDecodeError as err:
         raise InputError(f"cannot read the file ({err})", place=path,
                          fix="give a readable result JSON file") from None
     try:
         data = json.loads(text)
     except json.JSONDecodeError as err:
         raise InputError(f"not valid JSON (line {err.lineno}, column {err.colno}: {err.msg})", place=path,
+                         fix="give a result written by `hierarchy design SPEC --json PATH`") from None
+    except RecursionError:
+        raise InputError("the JSON is nested too deeply", place=path,
+                         fix="give a result written by `hierarchy design SPEC --json PATH`") from None
+    except ValueError as err:  # an integer of thousands of digits
+        raise InputError(f"a value cannot be read ({err})", place=path,
                          fix="give a result written by `hierarchy design SPEC --json PATH`") from None
     _check_result(data, path)
     return data
@@ -153,6 +166,35 @@ def _check_result(data, place) -> None:
         power = row.get("power")
         if not isinstance(power, (int, float)) or isinstance(power, bool) or not math.isfinite(power):
             raise InputError(f"link '{lid}' has no finite power", place=f"{place}: links.{lid}.power", fix=fix)
+        for key in ("snr", "bits"):
+            _optional_number(row.get(key), f"{place}: links.{lid}.{key}", fix)
+        if not isinstance(row.get("share_of_budget") or {}, dict):
+            raise InputError("the shares of budget are not an object", place=f"{place}: links.{lid}", fix=fix)
+        for b, share in (row.get("share_of_budget") or {}).items():
+            _optional_number(share, f"{place}: links.{lid}.share_of_budget.{b}", fix)
+    # What the title and the boxes print: numbers, text or nothing.
+    for name, area in data["areas"].items():
+        if not isinstance(area, dict):
+            raise InputError(f"area '{name}' is not an object", place=f"{place}: areas.{name}", fix=fix)
+        _optional_number(area.get("error"), f"{place}: areas.{name}.error", fix)
+    _optional_number(data.get("objective"), f"{place}: objective", fix)
+    for key in ("spec", "status", "form"):
+        if data.get(key) is not None and not isinstance(data[key], str):
+            raise InputError(f"the result's '{key}' is not text", place=f"{place}: {key}", fix=fix)
+    budgets = data.get("budgets") or {}
+    if not isinstance(budgets, dict) or not all(isinstance(r, dict) for r in budgets.values()):
+        raise InputError("the result's budgets are not an object of objects", place=f"{place}: budgets", fix=fix)
+    for b, row in budgets.items():
+        for key in ("used", "total", "shadow_price"):
+            _optional_number(row.get(key), f"{place}: budgets.{b}.{key}", fix)
+
+
+def _optional_number(value, place, fix) -> None:
+    """``None`` (shown as infinite) or a real number; anything else is refused."""
+    if value is not None and (isinstance(value, bool) or not isinstance(value, (int, float))
+                              or math.isnan(value)):
+        raise InputError(f"expected a number, got {type(value).__name__} {str(value)[:40]!r}", place=place,
+                         fix=fix)
 
 
 def _as_dict(result, spec):

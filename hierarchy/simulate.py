@@ -24,7 +24,7 @@ import numpy as np
 import scipy.stats
 
 from .closedloop import Layout, assemble
-from .errors import InputError
+from .errors import InputError, UnstableError
 from .evaluate import Scores, check_stable
 from .gains import Gains, check_gains, with_pins
 from .model import Spec
@@ -207,12 +207,25 @@ def default_burn_in(radius: float, steps: int) -> int:
 
 
 def _interval(means: np.ndarray, level: float) -> Estimate:
-    """Student-t interval at ``level`` over independent batch means."""
+    """Student-t interval at ``level`` over independent batch means.
+
+    Every measured quantity is a mean of squares with non-negative weights,
+    so the interval is cut at 0: a negative value is impossible, and an
+    interval reaching below 0 would count one as "inside".
+
+    Examples
+    --------
+    >>> _interval(np.array([0.0, 0.1, 0.0, 0.2]), 0.99).low
+    0.0
+    """
     n = means.size
     mean = float(means.mean())
     sd = float(means.std(ddof=1))
+    if not (np.isfinite(mean) and np.isfinite(sd)):
+        raise UnstableError("the simulated signals overflow: the loop's values grow beyond floating point",
+                            place="gains", fix="use gains of a sensible size (entries far below 1e12)")
     half = float(scipy.stats.t.ppf(0.5 + 0.5 * level, n - 1)) * sd / math.sqrt(n)
-    return Estimate(mean, mean - half, mean + half)
+    return Estimate(mean, max(mean - half, 0.0), mean + half)
 
 
 def _check_int(value, name, minimum):

@@ -16,6 +16,7 @@ import argparse
 import difflib
 import json
 import math
+import os
 import re
 import sys
 from dataclasses import dataclass, replace
@@ -304,6 +305,12 @@ def _read_yaml(text: str, where: str) -> _At:
                             fix="start the file with `spec: 1`")
     except yaml.YAMLError as err:
         raise _yaml_error(err, where) from None
+    except SpecError:
+        raise
+    except ValueError as err:  # e.g. an integer of thousands of digits
+        raise SpecError(f"a value cannot be read ({err})", place=where,
+                        fix="write numbers with at most a few dozen digits "
+                            "(1e12, not 1000000000000...)") from None
     except RecursionError:
         raise SpecError("the document is nested too deeply", place=where,
                         fix="flatten the structure; a spec is only a few "
@@ -1546,26 +1553,32 @@ def load_spec(path) -> Spec:
     >>> load_spec(path).name
     'tiny'
     """
+    from .io import ReadRefused, read_text
+
+    raw = os.fspath(path)  # as given: Path() would drop a trailing '/'
     path = Path(path)
     try:
-        if path.stat().st_size > MAX_DOCUMENT:
+        text = read_text(raw, MAX_DOCUMENT)
+    except ReadRefused as err:
+        if err.reason == "missing":
+            raise SpecError("the spec file does not exist", place=str(path),
+                            fix="check the path and the current folder") from None
+        if err.reason == "folder":
+            raise SpecError("this is a folder, not a spec file", place=str(path),
+                            fix="give the path of a .yaml file") from None
+        if err.reason == "too large":
             raise SpecError(f"the file is too large (more than {MAX_DOCUMENT:,} "
                             f"bytes)", place=str(path),
-                            fix="a spec should be a few kilobytes")
-        text = path.read_text(encoding="utf-8")
-    except FileNotFoundError:
-        raise SpecError("the spec file does not exist", place=str(path),
-                        fix="check the path and the current folder") from None
-    except IsADirectoryError:
-        raise SpecError("this is a folder, not a spec file", place=str(path),
-                        fix="give the path of a .yaml file") from None
+                            fix="a spec should be a few kilobytes") from None
+        if err.reason == "not regular":
+            raise SpecError(f"the spec is not a regular file ({err})", place=str(path),
+                            fix="save the spec to a file and give its path") from None
+        raise SpecError(f"the file cannot be read ({err})",
+                        place=str(path),
+                        fix="check that the file exists and is readable") from None
     except UnicodeDecodeError:
         raise SpecError("the file is not UTF-8 text", place=str(path),
                         fix="save the spec as UTF-8 text") from None
-    except OSError as err:
-        raise SpecError(f"the file cannot be read ({err.strerror})",
-                        place=str(path),
-                        fix="check that the file exists and is readable") from None
     return parse_spec(text, path=str(path))
 
 

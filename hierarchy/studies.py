@@ -93,6 +93,8 @@ TIMING_COLUMNS = ("seconds",)
 TIE_RTOL = 1e-5
 #: Largest number of points in one study.
 MAX_POINTS = 100_000
+#: A finished point's file above this size (bytes) is not trusted.
+MAX_PART_FILE = 50_000_000
 
 _SECTIONS = {
     "links": ("price", "noise"),
@@ -508,14 +510,67 @@ def _design_point(spec, options, start):
     return run_point(_restore(spec), options, None if start is None else start["gains"])
 
 
-def _worker_init():
-    """Worker processes: leave Ctrl-C to the parent (which ends them), and
-    one BLAS thread each."""
-    import signal
+#: How often (seconds) a worker checks that the process that started it lives.
+WATCH_PARENT_SECONDS = 0.5
 
-    signal.signal(signal.SIGINT, signal.SIG_IGN)
+
+def _worker_init(parent: int | None = None):
+    """Worker processes: leave Ctrl-C, SIGTERM and SIGHUP to the parent
+    (which ends its workers with SIGKILL when it stops), end with the parent
+    if it dies without a word, and run one BLAS thread each.
+
+    A worker's parent process is the start method's server, not the study's
+    process, so two guards watch: the kernel kills the worker when its parent
+    ends (``PR_SET_PDEATHSIG`` on Linux), and a thread ends it when the
+    study's process ``parent`` is gone (any system)."""
+    import signal
+    import threading
+
+    for name in ("SIGINT", "SIGTERM", "SIGHUP"):
+        if hasattr(signal, name):
+            signal.signal(getattr(signal, name), signal.SIG_IGN)
+    _die_with_parent()
+    if parent is not None:
+        threading.Thread(target=_watch_parent, args=(parent, os.getppid()), daemon=True,
+                         name="hierarchy-watch-parent").start()
     global _BLAS
     _BLAS = single_thread(force=True)  # threadpoolctl applies the limit at once
+
+
+def _die_with_parent() -> None:
+    """Ask Linux to SIGKILL this process when its parent ends (best effort)."""
+    if not sys.platform.startswith("linux"):
+        return
+    import ctypes
+    import signal
+
+    with contextlib.suppress(OSError, AttributeError):
+        libc = ctypes.CDLL(None, use_errno=True)
+        PR_SET_PDEATHSIG = 1
+        libc.prctl(PR_SET_PDEATHSIG, int(signal.SIGKILL), 0, 0, 0)
+
+
+def _watch_parent(parent: int, server: int) -> None:
+    """End this worker as soon as the study's process or the start method's
+    server is gone (the server is this worker's own parent)."""
+    while True:
+        time.sleep(WATCH_PARENT_SECONDS)
+        if os.getppid() != server or not _alive(parent):
+            os._exit(1)
+
+
+def _alive(pid: int) -> bool:
+    try:
+        os.kill(pid, 0)
+    except ProcessLookupError:
+        return False
+    except PermissionError:  # exists, but not ours to signal
+        return True
+    try:  # Linux: a killed process stays a zombie until its own parent reaps it
+        with open(f"/proc/{pid}/stat", "rb") as fh:
+            return fh.read().rsplit(b")", 1)[1].split()[0] not in (b"Z", b"X")
+    except (OSError, IndexError):
+        return True
 
 
 # ---------------------------------------------------------------------------
@@ -585,7 +640,7 @@ class _Pool:
 
             method = "forkserver" if "forkserver" in mp.get_all_start_methods() else "spawn"
             self.executor = cf.ProcessPoolExecutor(workers, mp_context=mp.get_context(method),
-                                                   initializer=_worker_init)
+                                                   initializer=_worker_init, initargs=(os.getpid(),))
 
     def close(self, abort=False):
         if abort and isinstance(self.executor, cf.ProcessPoolExecutor):
@@ -593,7 +648,7 @@ class _Pool:
             # user who pressed Ctrl-C wants to stop now. (Private attribute,
             # guarded: without it we fall back to waiting.)
             for proc in list((getattr(self.executor, "_processes", None) or {}).values()):
-                proc.terminate()
+                proc.kill()  # workers ignore SIGTERM (it is the parent's to handle)
         if isinstance(self.executor, cf.ProcessPoolExecutor):
             self.executor.shutdown(wait=not abort, cancel_futures=True)
         else:
@@ -619,9 +674,13 @@ def _split(points: list, pieces: int) -> list:
 
 
 def _load_part(folder: Path, key: str):
-    try:
-        data = json.loads((folder / f"{key}.json").read_text())
-    except (OSError, ValueError):
+    from .io import read_text
+
+    try:  # a part that is not a readable regular file is designed again
+        data = json.loads(read_text(folder / f"{key}.json", MAX_PART_FILE))
+    except (OSError, ValueError, RecursionError):
+        return None
+    if not isinstance(data, dict) or not isinstance(data.get("row"), dict):
         return None
     if data.get("format") != POINT_FORMAT or data.get("key") != key:
         return None
@@ -644,7 +703,12 @@ def _execute(chains: list, options, *, parts, workers, dask, warm, progress, lab
     chunks = [_Chain(piece) for c in chains for piece in _split(c, per_chain)]
     outputs, reused, computed = {}, 0, 0
     if parts is not None:
-        parts.mkdir(exist_ok=True)
+        try:
+            parts.mkdir(exist_ok=True)
+        except OSError as err:
+            raise InputError(f"cannot make the folder for finished points ({err.strerror or err})",
+                             place=str(parts), fix="check the folder's permissions, or choose another --out") \
+                from None
         if not fresh:
             for c in chunks:
                 for p in c.points:
@@ -677,7 +741,16 @@ def _execute(chains: list, options, *, parts, workers, dask, warm, progress, lab
             done, _ = cf.wait(list(running), return_when=cf.FIRST_COMPLETED)
             for fut in done:
                 chain, p = running.pop(fut)
-                out = fut.result()
+                try:
+                    out = fut.result()
+                except cf.BrokenExecutor:
+                    where = (f"the {reused + computed} finished points are kept in {parts}/" if parts is not None
+                             else "no output folder was given")
+                    raise HierarchyError(
+                        f"a worker process ended without finishing its point (killed, or out of memory); "
+                        f"{where}", place="--workers",
+                        fix="run the same command again to resume, with fewer --workers if memory is short") \
+                        from None
                 outputs[p.index] = out
                 computed += 1
                 if parts is not None:
