@@ -11,8 +11,8 @@ import pytest
 import scipy.linalg as sla
 from scipy.optimize import brentq, minimize_scalar
 
-from hierarchy import evaluate
 from hierarchy.design import Options, design
+from hierarchy.evaluate import evaluate
 from hierarchy.floor import (OPTIMAL, SKIPPED, Floor, information_floor, least_cut_energy,
                              least_error, link_capacity)
 from hierarchy.gains import Gains, gain_shapes
