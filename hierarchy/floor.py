@@ -17,7 +17,6 @@ Public entry points: :func:`information_floor` (a bound on the objective J),
 
 from __future__ import annotations
 
-import dataclasses
 import math
 import time
 import warnings
@@ -93,9 +92,10 @@ class Floor:
         Area -> the least error that area alone can reach with unlimited
         channels (a bound for each area separately).
     cut_powers : dict
-        Cut link id -> its power at the minimiser.
+        Link id -> its power at the minimiser, for the links out of the
+        sensors and (with area cuts) the links into weighted areas.
     rate_bits : float
-        Bits per step that cross the cut at the minimiser.
+        Bits per step that cross the sensor cut at the minimiser.
     """
 
     kind: str
@@ -314,7 +314,6 @@ def _read(spec: Spec) -> _Cut:
             fixed[a.name] = float(np.trace(T @ _smoothed(A, Q, C, R, -ahead) @ T.T))
     noiseless = [l.id for l in cut
                  if np.linalg.eigvalsh(l.noise)[0] <= _RANK_TOL * max(1.0, np.abs(l.noise).max())]
-    ids = {l.id for l in cut}
     budgets = [(b.name, list(b.links), b.total) for b in spec.budgets]
     prices = {l.id: l.price for l in spec.links}
     dropped = [LOOSE_UNCODED]

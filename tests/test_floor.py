@@ -9,7 +9,7 @@ from pathlib import Path
 import numpy as np
 import pytest
 import scipy.linalg as sla
-from scipy.optimize import brentq, minimize_scalar
+from scipy.optimize import brentq
 
 from hierarchy.design import Options, design
 from hierarchy.evaluate import evaluate
