@@ -77,6 +77,7 @@ def levels(g: nx.DiGraph) -> dict:
     up.add_nodes_from(g.nodes)
     up.add_edges_from((u, v) for u, v, d in g.edges(data=True) if d["kind"] == RESIDUAL and v not in starts)
     source = object()  # one source joined to every start by its level
+    up.add_node(source)  # (with no sensor at all, as in a hand-edited result, every area is unreached)
     up.add_edges_from((source, n, {"w": k}) for n, k in starts.items())
     dist = nx.single_source_dijkstra_path_length(up, source, weight=lambda u, v, d: d.get("w", 1))
     level = {n: int(k) for n, k in dist.items() if n is not source}

@@ -170,7 +170,7 @@ def test_a_resumed_sweep_designs_every_corrupt_part_again(tmp_path):
     status, out, err = _cli(*argv)
     assert status == 0, err
     parts = sorted((tmp_path / "run.parts").glob("*.json"))
-    assert len(parts) == 2
+    assert len(parts) >= 2  # forward walk, backward walk, and cold designs where they disagree
     good = json.loads((tmp_path / "run.json").read_text())["rows"]
     for corrupt in sorted((CORPUS / "parts").iterdir()):
         shutil.copyfile(corrupt, parts[0])
