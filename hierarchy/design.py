@@ -419,24 +419,14 @@ def _wake_silent(prob: Problem, best):
 def _flow(prob: Problem, silent: set):
     """Nodes that world information reaches along links that carry power
     (from the sensors) and nodes whose signal reaches a target that way."""
+    import networkx as nx
+
     spec = prob.spec
-    active = [l for l in spec.links if l.id not in silent]
+    g = nx.DiGraph((l.source, l.target) for l in spec.links if l.id not in silent)
     informed = {s.name for s in spec.sensors}
-    grew = True
-    while grew:
-        grew = False
-        for l in active:
-            if l.source in informed and l.target not in informed:
-                informed.add(l.target)
-                grew = True
     useful = {a.name for a in spec.areas if a.has_target and a.weight > 0}
-    grew = True
-    while grew:
-        grew = False
-        for l in active:
-            if l.target in useful and l.source not in useful:
-                useful.add(l.source)
-                grew = True
+    informed |= {n for s in informed if s in g for n in nx.descendants(g, s)}
+    useful |= {n for t in useful if t in g for n in nx.ancestors(g, t)}
     return informed, useful
 
 
