@@ -58,6 +58,10 @@ STREAM_ITER = 150
 #: Streams tried per wake-up pass (shortest first); links on streams beyond
 #: this are reported as not tested.
 MAX_STREAMS = 12
+#: Sender gains of a woken stream, relative to the informed start's (SNR
+#: near one): also a weak excursion, for a stream that only pays at a power
+#: well below its noise (a tight budget or a high price).
+STREAM_SCALES = (1.0, 0.1)
 #: Searches whose objectives are within this (relative) of the best agree.
 AGREE_RTOL = 1e-6
 
@@ -459,7 +463,9 @@ def _streams(prob: Problem, powers: dict):
 
     A silent link whose sender hears nothing of the world (no carrying path
     from a sensor reaches it) or whose receiver passes nothing on to a target
-    cannot show its worth alone: a small signal on it changes no error. Its
+    cannot show its worth alone: a small signal on it changes no error. Nor
+    can a link into an area that hears nothing else (its memory is
+    arbitrary until something arrives). Its
     stream is the link with the fewest silent links that bring the world to
     its sender and carry its signal on to a target.
 
@@ -470,7 +476,11 @@ def _streams(prob: Problem, powers: dict):
     quiet = [l for l in prob.spec.links if l.id in silent]
     streams, dead = {}, []
     for l in quiet:
-        if not prob.sender_slices(l.id) or (l.source in informed and l.target in useful):
+        # A link into an area that hears nothing else is a stream of one: that
+        # area's memory is flat while it hears nothing, so a small signal
+        # tested at whatever memory it has can miss what the link is worth.
+        if not prob.sender_slices(l.id) or (l.source in informed and l.target in useful
+                                            and l.target in informed):
             continue
         before = _path(quiet, {l.source}, informed, forward=False)
         after = _path(quiet, {l.target}, useful, forward=True)
@@ -507,7 +517,8 @@ def _wake_streams(prob: Problem, best, opts: Options, budget: int = STREAM_ITER 
     silent = set(_silent_ids(prob, powers))
     informed, _ = _flow(prob, silent)
     winner = None
-    for ids in streams[:MAX_STREAMS]:
+    trials = [(ids, scale) for ids in streams[:MAX_STREAMS] for scale in STREAM_SCALES]
+    for ids, scale in trials:
         if budget - used < 1:
             break
         theta = best.x.copy()
@@ -515,6 +526,8 @@ def _wake_streams(prob: Problem, best, opts: Options, budget: int = STREAM_ITER 
         for link in links:
             for sl in prob.slices(link.id) + _receivers(prob, link):
                 theta[sl] = ref[sl]
+            for sl in prob.sender_slices(link.id):
+                theta[sl] *= scale
         for node in {l.source for l in links} | {l.target for l in links}:
             if node not in informed:
                 for sl in prob.slices(node, "M"):

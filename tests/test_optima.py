@@ -136,3 +136,18 @@ def test_searches_are_reported_and_agree_on_the_example():
     assert n == 2 and k >= 1
     assert {s["search"] for s in res.searches} == {"multistart", "feed-forward first"}
     assert min(s["objective"] for s in res.searches) == res.objective
+
+
+def test_a_tight_budget_still_wakes_the_stream_that_pays():
+    # Ship deck at 1 % of a useful budget: the residual up to the swell area
+    # pays only at a power far below its noise, and that area hears nothing
+    # else (its memory is arbitrary while silent). A heavier search (16 starts,
+    # longer probes) is the reference; the default design must reach it, with
+    # both of its searches agreeing.
+    spec = set_value(load_spec(ROOT / "specs" / "compare-predictive.yaml"), "budgets[total].total", 0.02)
+    res = design(spec, compare_unpinned=False)
+    heavy = design(spec, Options(restarts=16, probe_iter=150, max_iter=6000), compare_unpinned=False)
+    assert res.converged and res.budgets["total"].met
+    assert res.objective <= heavy.objective * (1 + 1e-6)
+    assert res.agreement == (2, 2)
+    assert "deck-view->swell-view" not in res.silent
