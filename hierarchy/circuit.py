@@ -156,8 +156,8 @@ class Circuit:
 
         return simulate(self.spec, gains, **kwargs)
 
-    def design(self, options=None, start=None, compare_unpinned=True):
+    def design(self, options=None, start=None, compare_unpinned=True, floor=True):
         """Optimal gains (see :func:`hierarchy.design.design`)."""
         from .design import design
 
-        return design(self.spec, options, start, compare_unpinned)
+        return design(self.spec, options, start, compare_unpinned, floor)

@@ -198,7 +198,7 @@ def cmd_design(args) -> int:
     _check_resources(args, [c.spec])
     opts = Options(restarts=args.restarts, max_iter=args.max_iter, seed=args.seed)
     with _DesignProgress(_progress_wanted(args), "design"):
-        result = c.design(opts, start=start, compare_unpinned=not args.no_reference)
+        result = c.design(opts, start=start, compare_unpinned=not args.no_reference, floor=not args.no_floor)
     print(result_text(result))
     if args.json:
         write_json(args.json, result.to_dict())
@@ -417,6 +417,8 @@ def build_parser() -> argparse.ArgumentParser:
     s.add_argument("--seed", type=int, default=0, help="seed of the random starts")
     s.add_argument("--no-reference", action="store_true",
                    help="with pinned gains, skip designing the all-free circuit for comparison")
+    s.add_argument("--no-floor", action="store_true",
+                   help="skip the information floor (the lower bound printed beside the design)")
     _force_argument(s)
     s.add_argument("--progress", action="store_true",
                    help=f"a progress line on stderr every {PROGRESS_SECONDS:g} s (default: only on a terminal)")

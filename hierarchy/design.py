@@ -64,6 +64,13 @@ MAX_STREAMS = 12
 STREAM_SCALES = (1.0, 0.1)
 #: Searches whose objectives are within this (relative) of the best agree.
 AGREE_RTOL = 1e-6
+#: Largest world (state dimensions) whose information floor :func:`design`
+#: computes by default: the floor's semidefinite blocks are world-sized (about
+#: 10 s at 32 dimensions, docs/floor.md), small beside a design of that size.
+FLOOR_MAX_DIM = 40
+#: A bound above the achieved objective by more than this (relative) is a
+#: contradiction, reported as such (the floor solver's own margin is 1e-6).
+FLOOR_RTOL = 1e-6
 
 
 @dataclass
@@ -138,6 +145,9 @@ class DesignResult:
     searches : list of dict
         What each search of :func:`design` reached (``search``,
         ``objective``, ``status``).
+    floor : Floor or None
+        The information floor of the spec (:mod:`hierarchy.floor`), computed
+        apart from the search, or ``None`` when it was not asked for.
     """
 
     spec: Spec
@@ -156,10 +166,18 @@ class DesignResult:
     silent: dict = field(default_factory=dict)
     reference: "DesignResult | None" = None
     searches: list = field(default_factory=list)
+    floor: "Floor | None" = None
 
     @property
     def converged(self) -> bool:
         return self.status == CONVERGED
+
+    @property
+    def gap(self) -> float:
+        """Relative gap ``(objective - floor) / objective`` to the
+        information floor: at most what any better design could still gain;
+        ``nan`` without a usable bound."""
+        return float("nan") if self.floor is None else self.floor.gap(self.objective)
 
     @property
     def agreement(self) -> tuple:
@@ -887,7 +905,7 @@ def _scale_links(prob: Problem, theta, factor):
 
 
 def design(spec: Spec, options: Options | None = None, start: Gains | None = None,
-           compare_unpinned: bool = True) -> DesignResult:
+           compare_unpinned: bool = True, floor: bool = True) -> DesignResult:
     """Design a circuit: budget form if the spec has budgets, else price form.
 
     Two searches are run and the better design kept. The first starts from
@@ -901,6 +919,11 @@ def design(spec: Spec, options: Options | None = None, start: Gains | None = Non
     When the spec pins gains and ``compare_unpinned`` is true, the same
     circuit with every gain free is designed too and kept as
     ``result.reference``, so a hand-built circuit is shown beside the optimum.
+
+    With ``floor`` (the default) the information floor of the spec, a lower
+    bound no circuit beats, is computed apart from the search and kept as
+    ``result.floor`` with the gap ``result.gap`` (worlds of at most
+    ``FLOOR_MAX_DIM`` dimensions; larger ones are reported as skipped).
 
     Examples
     --------
@@ -928,7 +951,38 @@ def design(spec: Spec, options: Options | None = None, start: Gains | None = Non
     free = without_pins(spec)
     if compare_unpinned and free is not None:
         result.reference = run(free, opts)
+    if floor:
+        result.floor = floor_of(result)
     return result
+
+
+def floor_of(result: DesignResult, max_dim: int | None = FLOOR_MAX_DIM):
+    """The information floor of a design's spec, checked against the design.
+
+    The bound is computed from the spec alone (never from the design), so a
+    bound above the achieved objective would mean a fault in one of the two:
+    it is then reported as ``"contradicted"`` with both numbers, never as a
+    gap.
+
+    Examples
+    --------
+    >>> from hierarchy import load_spec
+    >>> res = design(load_spec("specs/single-loop.yaml"), floor=False)
+    >>> f = floor_of(res)
+    >>> f.status, f.objective <= res.objective
+    ('optimal', True)
+    """
+    from dataclasses import replace
+
+    from .floor import information_floor
+
+    floor = information_floor(result.spec, max_dim=max_dim)
+    if floor.ok and np.isfinite(result.objective) and \
+            floor.objective > result.objective + FLOOR_RTOL * max(abs(result.objective), F_FLOOR):
+        floor = replace(floor, status="contradicted",
+                        message=f"the bound {floor.objective:.9g} lies above the design's objective "
+                                f"{result.objective:.9g}: one of the two is wrong; please report it")
+    return floor
 
 
 def _usable(result) -> bool:

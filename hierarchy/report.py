@@ -105,10 +105,12 @@ def _floor(data) -> str:
     rows = [["lower bound on the objective", _num(floor.get("objective"), 6)],
             ["design's objective", _num(data.get("objective"), 6)],
             ["gap (objective minus bound)", _num(floor.get("gap"), 4)],
+            ["gap relative to the objective", _num(floor.get("relative_gap"), 4)],
             ["status of the bound", floor.get("status", "-")]]
     loose = floor.get("loose")
     if loose:
-        rows.append(["why the bound may be loose", loose if isinstance(loose, str) else "yes"])
+        rows.append(["why the bound may be loose",
+                     loose if isinstance(loose, str) else "; ".join(str(x) for x in loose)])
     return ("<h2>How far from the best possible</h2>"
             "<p>An information-theoretic lower bound: no design of this circuit can have a smaller "
             "objective. The gap is at most what a better design could still gain.</p>"

@@ -134,6 +134,12 @@ def result_to_dict(result) -> dict:
             "gap": result.objective - ref.objective,
             "relative_gap": (result.objective - ref.objective) / abs(ref.objective) if ref.objective else None,
         }
+    if result.floor is not None:
+        f = result.floor.to_dict()
+        ok = result.floor.ok
+        f["gap"] = result.objective - result.floor.objective if ok else None
+        f["relative_gap"] = result.gap if ok else None
+        d["floor"] = f
     d["gains"] = result.gains.to_dict()
     return _clean(d)
 
@@ -247,8 +253,24 @@ def result_text(result) -> str:
     parts.append(f"solver: {verdict}{agree}: {result.message} (in the run that ended the design); in all "
                  f"{_count(result.iterations, 'iteration')} over {_count(result.restarts, 'start')}, "
                  f"{_count(result.evaluations, 'evaluation')}, {result.seconds:.2f} s")
+    if result.floor is not None:
+        parts.append(floor_text(result))
     parts.append(EXPLAIN_HINT)
     return "\n\n".join(parts)
+
+
+def floor_text(result) -> str:
+    """The information floor beside a design: the bound, the gap and why
+    the bound may sit below the best circuit."""
+    f = result.floor
+    if not f.ok:
+        return f"information floor: {f.status} ({f.message})"
+    line = (f"information floor: no circuit of this spec can reach an objective below {fmt(f.objective, 6)}; "
+            f"this design is {fmt(result.objective - f.objective, 4)} ({100 * result.gap:.2f}%) above it, "
+            f"at most what any better design could gain")
+    if f.loose:
+        line += "\n  the bound may be loose: " + "; ".join(f.loose)
+    return line
 
 
 def _count(n, word) -> str:

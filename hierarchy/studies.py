@@ -486,16 +486,18 @@ def run_point(spec: Spec, options=None, start=None) -> dict:
     >>> out["row"]["status"]                                        # doctest: +SKIP
     'converged'
     """
-    from .design import Options, design
+    from .design import design
     from .gains import gains_from_dict
 
     t0 = time.perf_counter()
-    opts = options or Options()
+    opts = _opts(options)
     if isinstance(start, dict):
         start = gains_from_dict(start)
     try:
+        # No floor per point: one convex program each, for a bound that a
+        # study of one spec family can compute once (hierarchy.floor).
         result = design(spec, replace(opts, probe_iter=0) if start is not None else opts, start=start,
-                        compare_unpinned=False)
+                        compare_unpinned=False, floor=False)
     except HierarchyError as err:
         return {"row": {"status": "failed", "converged": False, "silent_links": None,
                         "seconds": time.perf_counter() - t0, "message": str(err)}, "gains": None}

@@ -3,6 +3,8 @@
 Sources are named beside each check."""
 
 import dataclasses
+import importlib
+import json
 import math
 from pathlib import Path
 
@@ -336,6 +338,42 @@ def test_bound_below_the_designed_objective_of_every_example(path):
         floor = information_floor(spec, area_cuts=cuts)
         assert floor.status == OPTIMAL
         assert 0 < floor.objective <= res.objective
+    # The design carries the same bound (computed from the spec alone) and its gap.
+    assert res.floor.status == OPTIMAL
+    assert res.floor.objective == pytest.approx(information_floor(spec).objective, rel=1e-9)
+    assert res.gap == pytest.approx((res.objective - res.floor.objective) / res.objective, rel=1e-12)
+    assert 0 <= res.gap < 1
+
+
+def test_a_bound_above_the_design_is_reported_as_a_contradiction(monkeypatch):
+    import hierarchy.floor as floor_module
+
+    spec = load_spec(SPECS[0])
+    res = design(spec, Options(restarts=1), floor=False)
+    assert res.floor is None and np.isnan(res.gap)
+    honest = information_floor(spec)
+    monkeypatch.setattr(floor_module, "information_floor",
+                        lambda *a, **k: dataclasses.replace(honest, objective=2 * res.objective))
+    bad = importlib.import_module("hierarchy.design").floor_of(res)
+    assert bad.status == "contradicted" and not bad.ok and np.isnan(bad.gap(res.objective))
+    assert "one of the two is wrong" in bad.message
+
+
+def test_the_design_command_prints_and_writes_the_floor(tmp_path, capsys):
+    from hierarchy.cli import main
+
+    out = tmp_path / "r.json"
+    assert main(["design", str(SPECS[0]), "--json", str(out), "--restarts", "1"]) == 0
+    text = capsys.readouterr().out
+    data = json.loads(out.read_text())
+    f = data["floor"]
+    assert f["status"] == OPTIMAL and f["objective"] <= data["objective"]
+    assert f["relative_gap"] == pytest.approx((data["objective"] - f["objective"]) / data["objective"], rel=1e-9)
+    assert "information floor: no circuit of this spec can reach an objective below" in text
+    assert f"{100 * f['relative_gap']:.2f}%" in text
+    assert main(["design", str(SPECS[0]), "--json", str(out), "--restarts", "1", "--no-floor"]) == 0
+    assert "information floor" not in capsys.readouterr().out
+    assert "floor" not in json.loads(out.read_text())
 
 
 def random_gains(spec, rng, radius=0.8):
