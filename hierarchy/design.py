@@ -13,7 +13,7 @@ The final design is re-scored exactly; budgets are checked, not assumed.
 from __future__ import annotations
 
 import time
-from dataclasses import dataclass, field
+from dataclasses import dataclass, field, replace
 
 import numpy as np
 
@@ -22,7 +22,7 @@ from .evaluate import Scores, link_covariances, link_powers, loop_radius, score
 from .gains import Gains, with_pins
 from .model import Spec
 from .problem import BudgetPenalty, Problem
-from .subcircuit import embed, without_predictions
+from .subcircuit import embed, narrowed, widen, without_predictions
 from .solver import CONVERGED, F_FLOOR, FAILED, ITERATION_LIMIT, minimise
 
 #: A link sending less than this fraction of its noise power (or of its
@@ -64,6 +64,13 @@ MAX_STREAMS = 12
 STREAM_SCALES = (1.0, 0.1)
 #: Searches whose objectives are within this (relative) of the best agree.
 AGREE_RTOL = 1e-6
+#: Circuits with at most this many free gains also get the narrow-link
+#: searches of :func:`design` (one more design per vector link, at most
+#: ``MAX_NARROW`` of them, the widest and dearest first).
+NARROW_MAX_GAINS = 400
+MAX_NARROW = 6
+#: Starts of each narrow circuit's design (the informed start and one more).
+NARROW_RESTARTS = 2
 #: Largest world (state dimensions) whose information floor :func:`design`
 #: computes by default: the floor's semidefinite blocks are world-sized (about
 #: 10 s at 32 dimensions, docs/floor.md), small beside a design of that size.
@@ -941,9 +948,21 @@ def design(spec: Spec, options: Options | None = None, start: Gains | None = Non
     if sub is not None:
         # A design of the sub-circuit is a design of this circuit with the
         # predictions silent; carried on from there, it can only improve.
-        part = run(sub, opts)
+        # (The sub-circuit gets the whole search, narrow links included, so
+        # that no design of it, however found, beats this circuit's.)
+        part = design(sub, opts, compare_unpinned=False, floor=False)
         if np.isfinite(part.objective):
             searches.append(("feed-forward first", run(spec, opts, embed(part.gains, sub, spec))))
+    for lid in _narrowable(spec):
+        # A vector link narrowed by one channel is a sub-circuit too; its
+        # optimum can sit in a basin the wide search misses. Carried on only
+        # where it beats every search so far (else it adds nothing).
+        sub, U = narrowed(spec, lid)
+        part = run(sub, replace(opts, restarts=min(opts.restarts, NARROW_RESTARTS)))
+        best = min(r.objective for _, r in searches if _usable(r)) if any(_usable(r) for _, r in searches) \
+            else np.inf
+        if _usable(part) and part.objective < best - AGREE_RTOL * max(abs(best), F_FLOOR):
+            searches.append((f"narrow {lid} first", run(spec, opts, widen(part.gains, sub, spec, lid, U))))
     result = _best_of(searches)
     result.seconds = time.perf_counter() - t0
     result.searches = [{"search": name, "objective": float(r.objective), "status": r.status}
@@ -972,8 +991,6 @@ def floor_of(result: DesignResult, max_dim: int | None = FLOOR_MAX_DIM):
     >>> f.status, f.objective <= res.objective
     ('optimal', True)
     """
-    from dataclasses import replace
-
     from .floor import information_floor
 
     floor = information_floor(result.spec, max_dim=max_dim)
@@ -983,6 +1000,20 @@ def floor_of(result: DesignResult, max_dim: int | None = FLOOR_MAX_DIM):
                         message=f"the bound {floor.objective:.9g} lies above the design's objective "
                                 f"{result.objective:.9g}: one of the two is wrong; please report it")
     return floor
+
+
+def _narrowable(spec: Spec) -> list:
+    """Vector links worth a narrow-link search: only in small circuits
+    (free gains at most ``NARROW_MAX_GAINS``), at most ``MAX_NARROW``."""
+    from .gains import gain_shapes
+
+    shapes = gain_shapes(spec)
+    free = sum(int(np.prod(shape)) for kind in ("areas", "links") for blocks in shapes[kind].values()
+               for shape in blocks.values())
+    if free > NARROW_MAX_GAINS:
+        return []
+    links = [l.id for l in spec.links if narrowed(spec, l.id) is not None]
+    return links[:MAX_NARROW]
 
 
 def _usable(result) -> bool:
@@ -1005,8 +1036,6 @@ def without_pins(spec: Spec):
     """The same circuit with every gain free, or ``None`` when the spec pins
     nothing or freeing the pins would leave a noisy, unpriced, unbudgeted link
     (whose optimum does not exist)."""
-    from dataclasses import replace
-
     if not (any(a.pin for a in spec.areas) or any(l.pin for l in spec.links)):
         return None
     budgeted = {lid for b in spec.budgets for lid in b.links}

@@ -19,7 +19,7 @@ import numpy as np
 from .gains import Gains, gain_shapes
 from .model import PREDICTION, Spec
 
-__all__ = ["without_links", "without_predictions", "embed", "contains"]
+__all__ = ["without_links", "without_predictions", "embed", "contains", "narrowed", "widen"]
 
 
 def without_links(spec: Spec, drop) -> Spec:
@@ -91,6 +91,78 @@ def embed(gains: Gains, sub: Spec, spec: Spec) -> Gains:
             for name, shape in blocks.items():
                 given = have.get(owner, {}).get(name)
                 table[name] = np.array(given, dtype=float) if given is not None else np.zeros(shape)
+    return out
+
+
+def narrowed(spec: Spec, link_id: str):
+    """``spec`` with one vector link narrowed by one channel, and the basis
+    that puts the narrow link back into the wide one.
+
+    A link of ``d`` channels can always send on only ``d - 1`` of them: a
+    design that sends along the ``d - 1`` directions of least channel noise
+    (``U``, orthonormal columns) is a design of the narrow link whose noise is
+    ``U' N U``. So the narrow circuit is a sub-circuit (its optimum is never
+    better), and its optimum can lie in a basin that a search of the wide
+    circuit does not find (a rank-one residual that leaves one reading to
+    the receiver's memory is a measured case: docs/search.md).
+
+    Returns ``(sub, U)``, or ``None`` when the link has one channel or it, or
+    a residual that subtracts its prediction, pins a gain.
+
+    Examples
+    --------
+    >>> from hierarchy import load_spec
+    >>> spec = load_spec("specs/two-level.yaml")
+    >>> sub, U = narrowed(spec, "probe->station-view")
+    >>> sub.link("probe->station-view").dim, U.shape
+    (1, (2, 1))
+    """
+    link = spec.link(link_id)
+    if link.dim < 2 or link.pin:
+        return None
+    back = f"{link.target}->{link.source}"
+    if link.kind == PREDICTION and any(l.id == back and "P" in l.pin for l in spec.links):
+        return None
+    w, V = np.linalg.eigh(np.asarray(link.noise, dtype=float))
+    U = V[:, : link.dim - 1]
+    thin = replace(link, dim=link.dim - 1, noise=np.diag(w[: link.dim - 1]))
+    return replace(spec, links=tuple(thin if l.id == link_id else l for l in spec.links)), U
+
+
+def widen(gains: Gains, sub: Spec, spec: Spec, link_id: str, U) -> Gains:
+    """A design of ``spec`` equal to ``gains``, a design of ``sub =
+    narrowed(spec, link_id)[0]``: the narrow link's signal is sent along
+    ``U`` and read back through ``U'`` (and a residual that subtracts the
+    narrow prediction reads it through ``U'``), so every score is the same.
+
+    Examples
+    --------
+    >>> from hierarchy import load_spec
+    >>> from hierarchy.evaluate import evaluate
+    >>> from hierarchy.problem import Problem
+    >>> spec = load_spec("specs/two-level.yaml")
+    >>> sub, U = narrowed(spec, "probe->station-view")
+    >>> g = Problem(sub).informed_start()
+    >>> a, b = evaluate(sub, g).objective, evaluate(spec, widen(g, sub, spec, "probe->station-view", U)).objective
+    >>> bool(abs(a - b) < 1e-12 * a)
+    True
+    """
+    out = embed(gains, sub, spec)
+    U = np.asarray(U, dtype=float)
+    link = spec.link(link_id)
+    blocks = out.links[link_id]
+    for name in list(blocks):
+        given = gains.links.get(link_id, {}).get(name)
+        if given is None:
+            continue
+        given = np.asarray(given, dtype=float)
+        # Rows of G, S and P are the link's channels; columns of K read them.
+        blocks[name] = U @ given if name in "GSP" else given @ U.T
+    if link.kind == PREDICTION:
+        back = f"{link.target}->{link.source}"
+        given = gains.links.get(back, {}).get("P")
+        if given is not None:
+            out.links[back]["P"] = np.asarray(given, dtype=float) @ U.T
     return out
 
 

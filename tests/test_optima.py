@@ -151,3 +151,39 @@ def test_a_tight_budget_still_wakes_the_stream_that_pays():
     assert res.objective <= heavy.objective * (1 + 1e-6)
     assert res.agreement == (2, 2)
     assert "deck-view->swell-view" not in res.silent
+
+
+@pytest.mark.parametrize("path, lid", [("two-level", "probe->station-view"),
+                                       ("compare-predictive", "deck-view->tilt")])
+def test_a_narrowed_link_is_a_sub_circuit(path, lid):
+    # model.md, "sub-circuit invariant", for a link sending on fewer channels:
+    # any design of the narrow circuit (here random stable starts) is a design
+    # of the wide one with the same scores, predictions included (the residual
+    # that subtracts a narrowed prediction reads it through U').
+    from hierarchy.evaluate import evaluate
+    from hierarchy.problem import Problem
+    from hierarchy.subcircuit import narrowed, widen
+
+    spec = load_spec(ROOT / "specs" / f"{path}.yaml")
+    sub, U = narrowed(spec, lid)
+    assert sub.link(lid).dim == spec.link(lid).dim - 1
+    prob = Problem(sub)
+    rng = np.random.default_rng(4)
+    for _ in range(3):
+        g = prob.unpack(prob.random_start(rng))
+        a = evaluate(sub, g).objective
+        assert evaluate(spec, widen(g, sub, spec, lid, U)).objective == pytest.approx(a, rel=1e-10)
+
+
+def test_two_levels_find_the_basin_of_a_rank_one_residual():
+    # The river gauge's best design sends one combination of the probe's two
+    # readings (a rank-one residual) and leaves the rest to the lower area's
+    # memory. One of 32 random starts finds that basin (seed 1 of a 16-start
+    # multistart with long probes); the default design must reach it too.
+    spec = load_spec(ROOT / "specs" / "two-level.yaml")
+    res = design(spec, compare_unpinned=False, floor=False)
+    heavy = design(spec, Options(restarts=16, probe_iter=150, max_iter=6000, seed=1), compare_unpinned=False,
+                   floor=False)
+    assert res.converged
+    assert res.objective <= heavy.objective * (1 + 1e-6)
+    assert any(s["search"].startswith("narrow ") for s in res.searches)
