@@ -13,7 +13,7 @@ EXIT_USAGE = 2
 #: A command that could not finish (a failed design, memory ran out).
 EXIT_FAILED = 1
 #: Commands that do matrix work, and so run BLAS on one thread (see blas.py).
-NUMERIC_COMMANDS = {"evaluate", "simulate", "design", "sweep", "phase", "compare"}
+NUMERIC_COMMANDS = {"evaluate", "simulate", "design", "sweep", "phase", "compare", "fit-world"}
 
 
 class _Parser(argparse.ArgumentParser):
@@ -357,6 +357,22 @@ def cmd_generate(args) -> int:
     return 0
 
 
+def cmd_fit_world(args) -> int:
+    from .fitworld import (check_world_output, fit_text, fit_world, load_recording, parse_blocks, parse_zeros,
+                           write_world)
+
+    check_world_output(args.output, args.force)
+    rec = load_recording(args.data)
+    blocks = parse_blocks(args.blocks, rec.channels)
+    zeros = parse_zeros(args.zero, blocks)
+    fit = fit_world(rec, blocks, lags=args.lags, zeros=zeros, mean=not args.no_mean,
+                    whiteness_lags=args.whiteness_lags)
+    print(fit_text(fit))
+    write_world(fit, args.output, force=args.force)
+    print(f"\nwrote {args.output} (the world: section of a spec)")
+    return 0
+
+
 def _study_arguments(s, kind):
     s.add_argument("--out", metavar="BASE", help=f"write BASE.csv, BASE.json and keep finished points in "
                                                  f"BASE.parts/ (default: the spec's name + '-{kind}')")
@@ -491,6 +507,28 @@ def build_parser() -> argparse.ArgumentParser:
     _study_arguments(s, "compare")
     s.set_defaults(run=cmd_compare)
 
+    s = sub.add_parser("fit-world", help="fit the world (VAR by least squares) to a recording; write its spec section",
+                       description="Fit x(t) = c + A_1 x(t-1) + ... + A_p x(t-p) + w(t) by least squares to a "
+                                   "recording (CSV with a header row of channel names, or a .npy array of shape "
+                                   "steps x channels, whose channels are named 0, 1, ...), with the channels "
+                                   "grouped into named world blocks; print the fit quality (stability margin, "
+                                   "R^2, whiteness of the residuals) and write the `world:` section of a spec.")
+    s.add_argument("data", metavar="DATA", help="the recording (.csv or .npy)")
+    s.add_argument("--blocks", nargs="+", metavar="NAME=CH,CH",
+                   help="world blocks and their channels, e.g. --blocks upstream=flow station=level_a,level_b "
+                        "(default: one block `world` of every channel; channels in no block are not used)")
+    s.add_argument("--zero", nargs="+", metavar="SRC:DST",
+                   help="couplings fixed at zero: block SRC does not drive block DST (also SRC->DST, quoted); "
+                        "`all` for no coupling between blocks")
+    s.add_argument("--lags", type=int, default=1, help="lag order p (default 1); p > 1 adds blocks NAME-lagK "
+                                                       "holding the past (the state form)")
+    s.add_argument("--no-mean", action="store_true", help="fit no constant (the recording is already zero-mean)")
+    s.add_argument("--whiteness-lags", type=int, metavar="H",
+                   help="lags of the whiteness tests (default min(10, samples/5))")
+    s.add_argument("-o", "--output", required=True, metavar="WORLD.yaml", help="the world section to write")
+    s.add_argument("--force", action="store_true", help="replace an existing output file")
+    s.set_defaults(run=cmd_fit_world)
+
     s = sub.add_parser("generate", help="write a synthetic layered circuit (for tests and benchmarks)",
                        description="A world with one block per level, probes at the bottom, residuals and "
                                    "predictions between neighbouring levels, and a --density fraction of the "
@@ -533,7 +571,7 @@ def _check_outputs(args) -> None:
     """Refuse an output that would overwrite an input, or another output."""
     import os
 
-    inputs = [getattr(args, n, None) for n in ("spec", "start", "result")]
+    inputs = [getattr(args, n, None) for n in ("spec", "start", "result", "data")]
     inputs += list(getattr(args, "specs", None) or [])
     if args.command != "design":
         inputs.append(getattr(args, "gains", None))
@@ -601,7 +639,8 @@ def _check_options(args) -> None:
 
     from .io import check_output
 
-    for name, option in (("spec", "SPEC"), ("gains", "--gains"), ("start", "--start"), ("result", "RESULT")):
+    for name, option in (("spec", "SPEC"), ("gains", "--gains"), ("start", "--start"), ("result", "RESULT"),
+                         ("data", "DATA")):
         if not (name == "gains" and args.command == "design"):
             _check_input_path(getattr(args, name, None), option)
     for path in getattr(args, "specs", None) or []:
@@ -627,6 +666,11 @@ def _check_options(args) -> None:
         if not (math.isfinite(args.tie) and 0 <= args.tie < 1):
             _bad_option("--tie", f"a relative tolerance is a number from 0 to below 1; got {args.tie:g}",
                         "use e.g. --tie 1e-5")
+    if args.command == "fit-world":
+        from .fitworld import MAX_LAGS
+
+        _int_between(args, "lags", "--lags", 1, MAX_LAGS)
+        _int_between(args, "whiteness_lags", "--whiteness-lags", 1, 10_000)
     if args.command == "sweep":
         _study_value(args.start, "--from")
         _study_value(args.stop, "--to")
@@ -648,7 +692,7 @@ def _named_outputs(args) -> list:
         named.append(("--gains", args.gains))
     if args.command == "render":
         named.append(("--output", _render_output(args)))
-    elif args.command == "generate":
+    elif args.command in ("generate", "fit-world"):
         named.append(("--output", args.output))
     if args.command in ("sweep", "phase", "compare"):
         import os
