@@ -373,6 +373,26 @@ def cmd_fit_world(args) -> int:
     return 0
 
 
+def cmd_import_graph(args) -> int:
+    from .importgraph import read_area_graph, skeleton_yaml, write_skeleton
+    from .io import refuse_existing
+    from .spec import parse_spec
+
+    refuse_existing(args.output, args.force)
+    graph = read_area_graph(args.graph, sensors=args.sensors.split(",") if args.sensors else None)
+    text = skeleton_yaml(graph, price=args.price, noise=args.noise, budget=args.budget)
+    spec = parse_spec(text)  # what is written must be a valid spec
+    write_skeleton(text, args.output, force=args.force)
+    kinds = {}
+    for l in spec.links:
+        kinds[l.kind] = kinds.get(l.kind, 0) + 1
+    print(f"read {graph.path}: {len(graph.sensors)} sensor(s) ({', '.join(graph.sensors)}), "
+          f"{len(spec.areas)} area(s), " + ", ".join(f"{v} {k} link(s)" for k, v in sorted(kinds.items())))
+    print(f"wrote {args.output}: a spec skeleton; edit its world, sensors and targets, then "
+          f"`hierarchy check {args.output}`")
+    return 0
+
+
 def _study_arguments(s, kind):
     s.add_argument("--out", metavar="BASE", help=f"write BASE.csv, BASE.json and keep finished points in "
                                                  f"BASE.parts/ (default: the spec's name + '-{kind}')")
@@ -529,6 +549,23 @@ def build_parser() -> argparse.ArgumentParser:
     s.add_argument("--force", action="store_true", help="replace an existing output file")
     s.set_defaults(run=cmd_fit_world)
 
+    s = sub.add_parser("import-graph", help="write a spec skeleton from a directed area graph",
+                       description="Read a directed area graph (GraphML, GML, or an edge-list CSV with a header "
+                                   "row source,target,...) with feedforward/feedback labels (edge `kind`) or node "
+                                   "levels, and optional edge distances and weights, and write a spec skeleton: "
+                                   "residual links up, prediction links down, prices from distances, noises from "
+                                   "weights, and a world and sensors to edit (docs/spec.md, 'Importing an area "
+                                   "graph').")
+    s.add_argument("graph", metavar="FILE", help="the graph (.graphml, .gml or .csv)")
+    s.add_argument("-o", "--output", required=True, metavar="SPEC.yaml", help="the spec to write")
+    s.add_argument("--sensors", metavar="NODE,NODE", help="the nodes that are sensors (default: role sensor or "
+                                                          "level 0, else the nodes no feedforward edge enters)")
+    s.add_argument("--price", type=float, default=0.05, help="price of a link of mean distance (default 0.05)")
+    s.add_argument("--noise", type=float, default=0.02, help="channel noise of a link of mean weight (default 0.02)")
+    s.add_argument("--budget", type=float, metavar="TOTAL", help="also put every link in one budget `total`")
+    s.add_argument("--force", action="store_true", help="replace an existing output file")
+    s.set_defaults(run=cmd_import_graph)
+
     s = sub.add_parser("generate", help="write a synthetic layered circuit (for tests and benchmarks)",
                        description="A world with one block per level, probes at the bottom, residuals and "
                                    "predictions between neighbouring levels, and a --density fraction of the "
@@ -571,7 +608,7 @@ def _check_outputs(args) -> None:
     """Refuse an output that would overwrite an input, or another output."""
     import os
 
-    inputs = [getattr(args, n, None) for n in ("spec", "start", "result", "data")]
+    inputs = [getattr(args, n, None) for n in ("spec", "start", "result", "data", "graph")]
     inputs += list(getattr(args, "specs", None) or [])
     if args.command != "design":
         inputs.append(getattr(args, "gains", None))
@@ -640,7 +677,7 @@ def _check_options(args) -> None:
     from .io import check_output
 
     for name, option in (("spec", "SPEC"), ("gains", "--gains"), ("start", "--start"), ("result", "RESULT"),
-                         ("data", "DATA")):
+                         ("data", "DATA"), ("graph", "FILE")):
         if not (name == "gains" and args.command == "design"):
             _check_input_path(getattr(args, name, None), option)
     for path in getattr(args, "specs", None) or []:
@@ -666,6 +703,12 @@ def _check_options(args) -> None:
         if not (math.isfinite(args.tie) and 0 <= args.tie < 1):
             _bad_option("--tie", f"a relative tolerance is a number from 0 to below 1; got {args.tie:g}",
                         "use e.g. --tie 1e-5")
+    if args.command == "import-graph":
+        for option in ("price", "noise", "budget"):
+            value = getattr(args, option)
+            if value is not None and not (math.isfinite(value) and 0 <= value <= MAX_VALUE):
+                _bad_option(f"--{option}", f"must be a finite number from 0 to {MAX_VALUE:g}; got {value:g}",
+                            f"give --{option} a value of 0 or more")
     if args.command == "fit-world":
         from .fitworld import MAX_LAGS
 
@@ -692,7 +735,7 @@ def _named_outputs(args) -> list:
         named.append(("--gains", args.gains))
     if args.command == "render":
         named.append(("--output", _render_output(args)))
-    elif args.command in ("generate", "fit-world"):
+    elif args.command in ("generate", "fit-world", "import-graph"):
         named.append(("--output", args.output))
     if args.command in ("sweep", "phase", "compare"):
         import os

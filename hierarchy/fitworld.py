@@ -575,9 +575,9 @@ def world_yaml(fit: WorldFit) -> str:
 
 def check_world_output(path, force=False) -> None:
     """Refuse, before any work, an existing ``path`` unless ``force``."""
-    path = os.fspath(path)
-    if os.path.lexists(path) and not force:
-        _bad(path, "the file exists; it is left as it is", "choose another -o, or add --force to replace it")
+    from .io import refuse_existing
+
+    refuse_existing(path, force)
 
 
 def write_world(fit: WorldFit, path, force=False) -> None:
