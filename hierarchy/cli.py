@@ -339,8 +339,12 @@ def cmd_compare(args) -> int:
 
     specs = [_load(path).spec for path in args.specs]
     opts, base, plot = _study_setup(args, specs, "compare")
-    totals = grid(*parse_range(args.budgets, "--budgets"), log=args.log)
-    study = compare(specs, totals, opts, log=args.log, output=base, tie_rtol=args.tie, **_run_kw(args))
+    if args.prices is not None:
+        study = compare(specs, None, opts, prices=grid(*parse_range(args.prices, "--prices"), log=args.log),
+                        log=args.log, output=base, tie_rtol=args.tie, **_run_kw(args))
+    else:
+        totals = grid(*parse_range(args.budgets, "--budgets"), log=args.log)
+        study = compare(specs, totals, opts, log=args.log, output=base, tie_rtol=args.tie, **_run_kw(args))
     return _study_finish(args, study, base, plot)
 
 
@@ -515,13 +519,20 @@ def build_parser() -> argparse.ArgumentParser:
     _study_arguments(s, "phase")
     s.set_defaults(run=cmd_phase)
 
-    s = sub.add_parser("compare", help="Pareto fronts of several architectures over a range of budgets",
+    s = sub.add_parser("compare", help="Pareto fronts of several architectures over a range of budgets or prices",
                        description="Design each spec in budget form at every total budget: each spec's budget "
-                                   "named `total` (or its only budget) is set to each value. Draws the fronts "
-                                   "(weighted error against energy used) and tells which spec is best where.")
+                                   "named `total` (or its only budget) is set to each value; or, with --prices, "
+                                   "in price form at every scale of its link prices (each link price times the "
+                                   "scale). Draws the fronts (weighted error against energy used) and tells "
+                                   "which spec is best where. A spec that holds another plus links it may "
+                                   "silence never loses to it.")
     s.add_argument("specs", nargs="+", metavar="SPEC")
-    s.add_argument("--budgets", required=True, metavar="LO:HI:N", help="N totals from LO to HI")
-    s.add_argument("--log", action="store_true", help="totals evenly spaced in logarithm")
+    ranges = s.add_mutually_exclusive_group(required=True)
+    ranges.add_argument("--budgets", metavar="LO:HI:N", help="N totals from LO to HI")
+    ranges.add_argument("--prices", metavar="LO:HI:N",
+                        help="instead of budgets: N scales from LO to HI, each multiplying every link price "
+                             "of every spec (designs in price form; budgets stay as written)")
+    s.add_argument("--log", action="store_true", help="totals (or price scales) evenly spaced in logarithm")
     s.add_argument("--tie", type=float, default=1e-5, metavar="RTOL",
                    help="objectives closer than this (relative) tie (default 1e-5)")
     _study_arguments(s, "compare")
@@ -720,7 +731,9 @@ def _check_options(args) -> None:
     if args.command in ("phase", "compare"):
         from .studies import parse_range
 
-        for option in ("--x-range", "--y-range") if args.command == "phase" else ("--budgets",):
+        options = ("--x-range", "--y-range") if args.command == "phase" else \
+            ("--prices",) if args.prices is not None else ("--budgets",)
+        for option in options:
             lo, hi, _ = parse_range(getattr(args, option[2:].replace("-", "_")), option)
             _study_value(lo, option)
             _study_value(hi, option)
