@@ -486,7 +486,9 @@ def build_parser() -> argparse.ArgumentParser:
                                    "its neighbour. PATH is links[FROM->TO].price or .noise, budgets[NAME].total, "
                                    "areas[NAME].weight or .activity_price, sensors[NAME].noise, "
                                    "world.states[NAME].noise or .dynamics (a noise or dynamics is set to the "
-                                   "number times the identity). In a shell, quote the path "
+                                   "number times the identity). A group in place of NAME sets several places to the "
+                                   "same value: * (all), kind:prediction, kind:residual, from:NODE, to:NODE, e.g. "
+                                   "'links[kind:prediction].price' (every top-down price). In a shell, quote the path "
                                    "('links[a->b].price': unquoted, `>` redirects) or write it with no shell "
                                    "characters: links.a:b.price. Rerunning an interrupted sweep resumes it.")
     s.add_argument("spec")

@@ -250,7 +250,9 @@ def parse_path(spec: Spec, text) -> ValuePath:
         what = {"links": "link", "budgets": "budget", "areas": "area", "sensors": "sensor",
                 "world.states": "state block"}[section]
         raise InputError(f"this spec has no {what} `{name}`{_close(name, names)}", place=str(text),
-                         fix=f"choose one of: {_choices(names)}" if names else f"the spec has no {what}s")
+                         fix=(f"choose one of: {_choices(names)}; or a group: "
+                              + ", ".join(("*",) + tuple(f"{k}:..." for k in _SELECTORS.get(section, ()))))
+                         if names else f"the spec has no {what}s")
     if fld not in _SECTIONS[section]:
         raise InputError(f"`{section}[{name}]` has no settable value `{fld}`{_close(fld, _SECTIONS[section])}",
                          place=str(text), fix="settable here: " + ", ".join(_SECTIONS[section]))
