@@ -38,8 +38,8 @@ may be needed.
 Examples
 --------
 >>> fit = fit_world(load_recording("specs/recordings/river-gauge.csv"),
-...                 {"upstream": ["flow"], "station": ["level_a", "level_b"]})   # doctest: +SKIP
->>> fit.margin > 0                                                             # doctest: +SKIP
+...                 {"upstream": ["flow"], "station": ["level_a", "level_b"]})
+>>> fit.margin > 0
 True
 """
 

@@ -37,10 +37,10 @@ the user then edits:
 
 Examples
 --------
->>> text = import_graph("specs/graphs/two-senses-areas.graphml")   # doctest: +SKIP
+>>> text = import_graph("specs/graphs/two-senses-areas.graphml")
 >>> from hierarchy.spec import parse_spec
->>> parse_spec(text).name                                          # doctest: +SKIP
-'two-senses-areas'
+>>> parse_spec(text).name
+'two senses, six areas'
 """
 
 from __future__ import annotations

@@ -216,3 +216,12 @@ def test_bad_options_name_the_option(tmp_path, capsys, extra, words):
     err = capsys.readouterr().err
     for w in words:
         assert w in err, (w, err)
+
+
+def test_examples_in_the_docstrings_run(monkeypatch):
+    import doctest
+
+    import hierarchy.fitworld as module
+
+    monkeypatch.chdir(ROOT)  # the examples read specs/ from the repository root
+    assert doctest.testmod(module).failed == 0

@@ -134,3 +134,12 @@ def test_an_existing_output_is_kept_without_force(tmp_path, capsys):
     assert "--force" in capsys.readouterr().err and out.read_text() == "# my edits\n"
     assert main(["import-graph", str(GRAPHML), "-o", str(out), "--force"]) == 0
     assert parse_spec(out.read_text()).name == "two senses, six areas"
+
+
+def test_examples_in_the_docstrings_run(monkeypatch):
+    import doctest
+
+    import hierarchy.importgraph as module
+
+    monkeypatch.chdir(ROOT)  # the examples read specs/ from the repository root
+    assert doctest.testmod(module).failed == 0
