@@ -12,6 +12,8 @@ the user then edits:
   edge up the levels is feedforward, down is feedback, along a level lateral.
   Feedforward and lateral edges become residual links (residuals go up),
   feedback edges prediction links (predictions come down).
+* **names.** A node is named by its ``label`` (or ``name``) attribute when
+  every node has one, as graph editors write them; else by its id.
 * **sensors.** A node whose ``role`` is ``sensor``, or whose ``level`` is 0;
   failing both, every node that no feedforward edge enters (``--sensors``
   names them instead). Levels of areas are written as ``level:``: the given
@@ -187,6 +189,16 @@ def read_area_graph(path, sensors=None) -> AreaGraph:
         g = nx.DiGraph(g)
     if g.number_of_nodes() == 0:
         _bad(path, "the graph has no nodes", "give a graph with sensors and areas")
+    # Editors that write GraphML give nodes ids such as n0 and put the name in `label` (or `name`).
+    shown = {n: d.get("label", d.get("name")) for n, d in g.nodes(data=True)}
+    if all(isinstance(v, str) and v.strip() for v in shown.values()):
+        seen = {}
+        for n, v in shown.items():
+            if v in seen:
+                _bad(f"{path}: node `{n}`", f"two nodes (`{seen[v]}` and `{n}`) are both labelled `{v}`",
+                     "give every node its own label")
+            seen[v] = n
+        g = nx.relabel_nodes(g, shown)
     for u, v in g.edges():
         if u == v:
             _bad(f"{path}: edge {u}->{u}", "an edge from a node to itself; an area's own memory is its M gain, "

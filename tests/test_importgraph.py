@@ -143,3 +143,20 @@ def test_examples_in_the_docstrings_run(monkeypatch):
 
     monkeypatch.chdir(ROOT)  # the examples read specs/ from the repository root
     assert doctest.testmod(module).failed == 0
+
+
+def test_labelled_nodes_are_named_by_their_labels_and_the_skeleton_designs(tmp_path):
+    from hierarchy.design import Options, design
+
+    g = nx.read_graphml(GRAPHML)
+    ids = {n: f"n{i}" for i, n in enumerate(g)}
+    h = nx.relabel_nodes(g, ids)  # as a graph editor writes it: ids n0, n1, ... and the names in `label`
+    for n, i in ids.items():
+        h.nodes[i]["label"] = n
+    nx.write_graphml(h, tmp_path / "editor.graphml")
+    text = import_graph(tmp_path / "editor.graphml")
+    ref = yaml.safe_load(import_graph(GRAPHML))
+    assert {k: v for k, v in yaml.safe_load(text).items() if k != "name"} == \
+        {k: v for k, v in ref.items() if k != "name"}
+    result = design(parse_spec(text), Options(restarts=2, max_iter=1500))
+    assert result.status == "converged"
