@@ -372,8 +372,9 @@ def cmd_fit_world(args) -> int:
     fit = fit_world(rec, blocks, lags=args.lags, zeros=zeros, mean=not args.no_mean,
                     whiteness_lags=args.whiteness_lags)
     print(fit_text(fit))
-    write_world(fit, args.output, force=args.force)
-    print(f"\nwrote {args.output} (the world: section of a spec)")
+    write_world(fit, args.output, force=args.force, template=args.template)
+    print(f"\nwrote {args.output} " + (f"({args.template} with the fitted world)" if args.template
+                                       else "(the world: section of a spec)"))
     return 0
 
 
@@ -559,6 +560,8 @@ def build_parser() -> argparse.ArgumentParser:
     s.add_argument("--whiteness-lags", type=int, metavar="H",
                    help="lags of the whiteness tests (default min(10, samples/5))")
     s.add_argument("-o", "--output", required=True, metavar="WORLD.yaml", help="the world section to write")
+    s.add_argument("--template", metavar="SPEC", help="write this spec with its world replaced by the fit "
+                                                     "(every other line kept) instead of the world section alone")
     s.add_argument("--force", action="store_true", help="replace an existing output file")
     s.set_defaults(run=cmd_fit_world)
 
@@ -621,7 +624,7 @@ def _check_outputs(args) -> None:
     """Refuse an output that would overwrite an input, or another output."""
     import os
 
-    inputs = [getattr(args, n, None) for n in ("spec", "start", "result", "data", "graph")]
+    inputs = [getattr(args, n, None) for n in ("spec", "start", "result", "data", "graph", "template")]
     inputs += list(getattr(args, "specs", None) or [])
     if args.command != "design":
         inputs.append(getattr(args, "gains", None))
@@ -690,7 +693,7 @@ def _check_options(args) -> None:
     from .io import check_output
 
     for name, option in (("spec", "SPEC"), ("gains", "--gains"), ("start", "--start"), ("result", "RESULT"),
-                         ("data", "DATA"), ("graph", "FILE")):
+                         ("data", "DATA"), ("graph", "FILE"), ("template", "--template")):
         if not (name == "gains" and args.command == "design"):
             _check_input_path(getattr(args, name, None), option)
     for path in getattr(args, "specs", None) or []:

@@ -56,7 +56,7 @@ import numpy as np
 from .errors import InputError
 
 __all__ = ["Recording", "WorldFit", "load_recording", "parse_blocks", "parse_zeros", "fit_world",
-           "world_dict", "world_yaml", "check_world_output", "write_world", "ljung_box", "portmanteau", "fit_text"]
+           "world_dict", "world_yaml", "into_template", "check_world_output", "write_world", "ljung_box", "portmanteau", "fit_text"]
 
 #: Largest recording file read (bytes).
 MAX_FILE = 200_000_000
@@ -573,6 +573,47 @@ def world_yaml(fit: WorldFit) -> str:
     return "\n".join(head) + "\n" + body
 
 
+def into_template(fit: WorldFit, template) -> str:
+    """The spec file ``template`` with its ``world:`` section replaced by the
+    fit, every other line (comments included) kept as written; checked by
+    the spec reader before it is returned.
+
+    Raises
+    ------
+    SpecError
+        If the template is not a valid spec, or is no longer one with the
+        fitted world (for example a sensor observes a block the fit lacks).
+    InputError
+        If the template has no top-level ``world:`` line to replace.
+    """
+    import re
+
+    import yaml
+
+    from .errors import SpecError
+    from .spec import load_spec, parse_spec
+
+    load_spec(template)  # a broken template is reported as itself, not as the output
+    with open(template, encoding="utf-8") as fh:
+        lines = fh.read().splitlines(keepends=True)
+    start = next((i for i, ln in enumerate(lines) if re.match(r"world\s*:", ln)), None)
+    if start is None:
+        _bad(os.fspath(template), "the template has no top-level `world:` line to replace",
+             "write the template's world in block style, starting with a line `world:`")
+    end = next((i for i in range(start + 1, len(lines)) if re.match(r"[^\s#]", lines[i])), len(lines))
+    while end > start + 1 and re.match(r"(#.*)?\s*$", lines[end - 1]):
+        end -= 1  # comments just above the next key belong to it
+    head = [ln for ln in world_yaml(fit).splitlines(keepends=True) if ln.startswith("#") and "paste" not in ln]
+    body = yaml.safe_dump({"world": world_dict(fit)}, sort_keys=False, default_flow_style=None, width=100)
+    text = "".join(lines[:start] + head + [body] + lines[end:])
+    try:
+        parse_spec(text, path=os.fspath(template))
+    except SpecError as err:
+        raise SpecError(f"with the fitted world the template is no longer a valid spec: {err.message}",
+                        place=f"--template {os.fspath(template)}: {err.place}", fix=err.fix) from None
+    return text
+
+
 def check_world_output(path, force=False) -> None:
     """Refuse, before any work, an existing ``path`` unless ``force``."""
     from .io import refuse_existing
@@ -580,9 +621,10 @@ def check_world_output(path, force=False) -> None:
     refuse_existing(path, force)
 
 
-def write_world(fit: WorldFit, path, force=False) -> None:
-    """Write :func:`world_yaml` to ``path`` atomically; an existing file is
-    replaced only with ``force``.
+def write_world(fit: WorldFit, path, force=False, template=None) -> None:
+    """Write :func:`world_yaml` (or, with ``template``, the template spec
+    holding the fitted world: :func:`into_template`) to ``path`` atomically;
+    an existing file is replaced only with ``force``.
 
     Raises
     ------
@@ -592,7 +634,8 @@ def write_world(fit: WorldFit, path, force=False) -> None:
     from .io import atomic_write_text
 
     check_world_output(path, force)
-    atomic_write_text(os.fspath(path), world_yaml(fit))
+    text = world_yaml(fit) if template is None else into_template(fit, template)
+    atomic_write_text(os.fspath(path), text)
 
 
 def fit_text(fit: WorldFit) -> str:

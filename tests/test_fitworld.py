@@ -225,3 +225,23 @@ def test_examples_in_the_docstrings_run(monkeypatch):
 
     monkeypatch.chdir(ROOT)  # the examples read specs/ from the repository root
     assert doctest.testmod(module).failed == 0
+
+
+def test_template_keeps_every_other_line_and_checks_the_result(tmp_path, capsys):
+    template = ROOT / "specs" / "two-level.yaml"
+    out = tmp_path / "fitted.yaml"
+    blocks = ["--blocks", "upstream=flow", "station=level_a,level_b", "--zero", "station:upstream"]
+    assert main(["fit-world", str(RECORDING), *blocks, "--template", str(template), "-o", str(out)]) == 0
+    text = out.read_text()
+    for line in template.read_text().splitlines():  # comments, sensors, areas and links as written
+        if not line.startswith(("world:", "    ", "  states:")):
+            assert line in text, line
+    spec, ref = load_spec(out), load_spec(ROOT / "specs" / "fitted-river.yaml")
+    np.testing.assert_allclose(spec.world.A, ref.world.A, rtol=1e-12)
+    assert [l.id for l in spec.links] == [l.id for l in load_spec(template).links]
+    # block names the template does not use: refused, naming the template and the place
+    assert main(["fit-world", str(RECORDING), "--blocks", "up=flow", "station=level_a,level_b",
+                 "--template", str(template), "-o", str(tmp_path / "bad.yaml")]) == 2
+    err = capsys.readouterr().err
+    assert "--template" in err and "no longer a valid spec" in err and "`upstream`" in err
+    assert not (tmp_path / "bad.yaml").exists()
