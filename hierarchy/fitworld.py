@@ -372,6 +372,8 @@ def fit_world(recording: Recording, blocks=None, *, lags=1, zeros=(), mean=True,
         _bad("--lags", f"the lag order must be a whole number from 1 to {MAX_LAGS}; got {lags}", "use e.g. --lags 1")
     index = {c: i for i, c in enumerate(recording.channels)}
     used = [c for chans in blocks.values() for c in chans]
+    if len(set(used)) < len(used) or any(c not in index for c in used):
+        parse_blocks([f"{b}={','.join(cs)}" for b, cs in blocks.items()], recording.channels)  # says which
     data = recording.data[:, [index[c] for c in used]]
     T, n = data.shape
     p = int(lags)
@@ -407,7 +409,7 @@ def fit_world(recording: Recording, blocks=None, *, lags=1, zeros=(), mean=True,
         allowed = [j * n + m for j in range(p) for m in range(n) if (owner[m], owner[i]) not in zeros]
         allowed += [k - 1] if mean else []
         Xi = X[:, allowed]
-        coef, _, rank, sv = np.linalg.lstsq(Xi, Y[:, i], rcond=None)
+        coef, _, rank, _ = np.linalg.lstsq(Xi, Y[:, i], rcond=None)
         if rank < len(allowed):
             _bad(f"{recording.path}: channel `{used[i]}`", "its regressors are collinear (two channels move in "
                                                           "lock-step, or one is a constant)",

@@ -33,8 +33,8 @@ the user then edits:
   (``SENSOR-input``, dim 1, dynamics 0.9, noise 0.1) and a slow shared cause
   ``common`` (dynamics 0.95, noise 0.05) that drives every sensor's block by
   0.3; each sensor reads its block with noise 0.05. An area on the top level
-  tracks ``common``; any other area tracks the blocks of the sensors that reach
-  it through feedforward edges. These numbers are placeholders: edit them (or
+  (of two or more) tracks ``common``; any other area tracks the blocks of the
+  sensors that reach it through feedforward edges. These numbers are placeholders: edit them (or
   fit the world from a recording with ``hierarchy fit-world``).
 
 Examples
@@ -337,7 +337,7 @@ def skeleton(graph: AreaGraph, *, price=0.05, noise=0.02, budget=None) -> dict:
     out_sensors = {s: {"observes": {blocks[s]: "identity"}, "noise": READ_NOISE} for s in sensors}
     out_areas = {}
     for a in areas:
-        if graph.levels[a] == top:
+        if graph.levels[a] == top and top > 1:
             tracks = [COMMON]
         else:
             tracks = [blocks[s] for s in sensors if s in reach.get(a, [])] or [COMMON]

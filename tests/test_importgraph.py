@@ -160,3 +160,9 @@ def test_labelled_nodes_are_named_by_their_labels_and_the_skeleton_designs(tmp_p
         {k: v for k, v in ref.items() if k != "name"}
     result = design(parse_spec(text), Options(restarts=2, max_iter=1500))
     assert result.status == "converged"
+
+
+def test_one_level_of_areas_tracks_the_sensors_blocks(tmp_path):
+    path = write(tmp_path, "flat.csv", "source,target,kind\neye,A,ff\nA,eye,fb\nskin,A,ff\nskin,B,ff\n")
+    spec = parse_spec(import_graph(path))
+    assert {a.name: a.tracks for a in spec.areas} == {"A": ("eye-input", "skin-input"), "B": ("skin-input",)}
