@@ -13,7 +13,7 @@ EXIT_USAGE = 2
 #: A command that could not finish (a failed design, memory ran out).
 EXIT_FAILED = 1
 #: Commands that do matrix work, and so run BLAS on one thread (see blas.py).
-NUMERIC_COMMANDS = {"evaluate", "simulate", "design", "sweep", "phase", "compare"}
+NUMERIC_COMMANDS = {"evaluate", "simulate", "design", "sweep", "phase", "compare", "fit-world"}
 
 
 class _Parser(argparse.ArgumentParser):
@@ -339,8 +339,12 @@ def cmd_compare(args) -> int:
 
     specs = [_load(path).spec for path in args.specs]
     opts, base, plot = _study_setup(args, specs, "compare")
-    totals = grid(*parse_range(args.budgets, "--budgets"), log=args.log)
-    study = compare(specs, totals, opts, log=args.log, output=base, tie_rtol=args.tie, **_run_kw(args))
+    if args.prices is not None:
+        study = compare(specs, None, opts, prices=grid(*parse_range(args.prices, "--prices"), log=args.log),
+                        log=args.log, output=base, tie_rtol=args.tie, **_run_kw(args))
+    else:
+        totals = grid(*parse_range(args.budgets, "--budgets"), log=args.log)
+        study = compare(specs, totals, opts, log=args.log, output=base, tie_rtol=args.tie, **_run_kw(args))
     return _study_finish(args, study, base, plot)
 
 
@@ -354,6 +358,43 @@ def cmd_generate(args) -> int:
     spec = load_spec(args.output)
     print(f"wrote {args.output}: {len(spec.areas)} areas, {len(spec.sensors)} sensors, {len(spec.links)} links, "
           f"world of {spec.world.dim} states" + (f", {len(spec.budgets)} budgets" if spec.budgets else ""))
+    return 0
+
+
+def cmd_fit_world(args) -> int:
+    from .fitworld import (check_world_output, fit_text, fit_world, load_recording, parse_blocks, parse_zeros,
+                           write_world)
+
+    check_world_output(args.output, args.force)
+    rec = load_recording(args.data)
+    blocks = parse_blocks(args.blocks, rec.channels)
+    zeros = parse_zeros(args.zero, blocks)
+    fit = fit_world(rec, blocks, lags=args.lags, zeros=zeros, mean=not args.no_mean,
+                    whiteness_lags=args.whiteness_lags)
+    print(fit_text(fit))
+    write_world(fit, args.output, force=args.force, template=args.template)
+    print(f"\nwrote {args.output} " + (f"({args.template} with the fitted world)" if args.template
+                                       else "(the world: section of a spec)"))
+    return 0
+
+
+def cmd_import_graph(args) -> int:
+    from .importgraph import read_area_graph, skeleton_yaml, write_skeleton
+    from .io import refuse_existing
+    from .spec import parse_spec
+
+    refuse_existing(args.output, args.force)
+    graph = read_area_graph(args.graph, sensors=args.sensors.split(",") if args.sensors else None)
+    text = skeleton_yaml(graph, price=args.price, noise=args.noise, budget=args.budget)
+    spec = parse_spec(text)  # what is written must be a valid spec
+    write_skeleton(text, args.output, force=args.force)
+    kinds = {}
+    for l in spec.links:
+        kinds[l.kind] = kinds.get(l.kind, 0) + 1
+    print(f"read {graph.path}: {len(graph.sensors)} sensor(s) ({', '.join(graph.sensors)}), "
+          f"{len(spec.areas)} area(s), " + ", ".join(f"{v} {k} link(s)" for k, v in sorted(kinds.items())))
+    print(f"wrote {args.output}: a spec skeleton; edit its world, sensors and targets, then "
+          f"`hierarchy check {args.output}`")
     return 0
 
 
@@ -448,7 +489,9 @@ def build_parser() -> argparse.ArgumentParser:
                                    "its neighbour. PATH is links[FROM->TO].price or .noise, budgets[NAME].total, "
                                    "areas[NAME].weight or .activity_price, sensors[NAME].noise, "
                                    "world.states[NAME].noise or .dynamics (a noise or dynamics is set to the "
-                                   "number times the identity). In a shell, quote the path "
+                                   "number times the identity). A group in place of NAME sets several places to the "
+                                   "same value: * (all), kind:prediction, kind:residual, from:NODE, to:NODE, e.g. "
+                                   "'links[kind:prediction].price' (every top-down price). In a shell, quote the path "
                                    "('links[a->b].price': unquoted, `>` redirects) or write it with no shell "
                                    "characters: links.a:b.price. Rerunning an interrupted sweep resumes it.")
     s.add_argument("spec")
@@ -481,17 +524,65 @@ def build_parser() -> argparse.ArgumentParser:
     _study_arguments(s, "phase")
     s.set_defaults(run=cmd_phase)
 
-    s = sub.add_parser("compare", help="Pareto fronts of several architectures over a range of budgets",
+    s = sub.add_parser("compare", help="Pareto fronts of several architectures over a range of budgets or prices",
                        description="Design each spec in budget form at every total budget: each spec's budget "
-                                   "named `total` (or its only budget) is set to each value. Draws the fronts "
-                                   "(weighted error against energy used) and tells which spec is best where.")
+                                   "named `total` (or its only budget) is set to each value; or, with --prices, "
+                                   "in price form at every scale of its link prices (each link price times the "
+                                   "scale). Draws the fronts (weighted error against energy used) and tells "
+                                   "which spec is best where. A spec that holds another plus links it may "
+                                   "silence never loses to it.")
     s.add_argument("specs", nargs="+", metavar="SPEC")
-    s.add_argument("--budgets", required=True, metavar="LO:HI:N", help="N totals from LO to HI")
-    s.add_argument("--log", action="store_true", help="totals evenly spaced in logarithm")
+    ranges = s.add_mutually_exclusive_group(required=True)
+    ranges.add_argument("--budgets", metavar="LO:HI:N", help="N totals from LO to HI")
+    ranges.add_argument("--prices", metavar="LO:HI:N",
+                        help="instead of budgets: N scales from LO to HI, each multiplying every link price "
+                             "of every spec (designs in price form; budgets stay as written)")
+    s.add_argument("--log", action="store_true", help="totals (or price scales) evenly spaced in logarithm")
     s.add_argument("--tie", type=float, default=1e-5, metavar="RTOL",
                    help="objectives closer than this (relative) tie (default 1e-5)")
     _study_arguments(s, "compare")
     s.set_defaults(run=cmd_compare)
+
+    s = sub.add_parser("fit-world", help="fit the world (VAR by least squares) to a recording; write its spec section",
+                       description="Fit x(t) = c + A_1 x(t-1) + ... + A_p x(t-p) + w(t) by least squares to a "
+                                   "recording (CSV with a header row of channel names, or a .npy array of shape "
+                                   "steps x channels, whose channels are named 0, 1, ...), with the channels "
+                                   "grouped into named world blocks; print the fit quality (stability margin, "
+                                   "R^2, whiteness of the residuals) and write the `world:` section of a spec.")
+    s.add_argument("data", metavar="DATA", help="the recording (.csv or .npy)")
+    s.add_argument("--blocks", nargs="+", metavar="NAME=CH,CH",
+                   help="world blocks and their channels, e.g. --blocks upstream=flow station=level_a,level_b "
+                        "(default: one block `world` of every channel; channels in no block are not used)")
+    s.add_argument("--zero", nargs="+", metavar="SRC:DST",
+                   help="couplings fixed at zero: block SRC does not drive block DST (also SRC->DST, quoted); "
+                        "`all` for no coupling between blocks")
+    s.add_argument("--lags", type=int, default=1, help="lag order p (default 1); p > 1 adds blocks NAME-lagK "
+                                                       "holding the past (the state form)")
+    s.add_argument("--no-mean", action="store_true", help="fit no constant (the recording is already zero-mean)")
+    s.add_argument("--whiteness-lags", type=int, metavar="H",
+                   help="lags of the whiteness tests (default min(10, samples/5))")
+    s.add_argument("-o", "--output", required=True, metavar="WORLD.yaml", help="the world section to write")
+    s.add_argument("--template", metavar="SPEC", help="write this spec with its world replaced by the fit "
+                                                     "(every other line kept) instead of the world section alone")
+    s.add_argument("--force", action="store_true", help="replace an existing output file")
+    s.set_defaults(run=cmd_fit_world)
+
+    s = sub.add_parser("import-graph", help="write a spec skeleton from a directed area graph",
+                       description="Read a directed area graph (GraphML, GML, or an edge-list CSV with a header "
+                                   "row source,target,...) with feedforward/feedback labels (edge `kind`) or node "
+                                   "levels, and optional edge distances and weights, and write a spec skeleton: "
+                                   "residual links up, prediction links down, prices from distances, noises from "
+                                   "weights, and a world and sensors to edit (docs/spec.md, 'Importing an area "
+                                   "graph').")
+    s.add_argument("graph", metavar="FILE", help="the graph (.graphml, .gml or .csv)")
+    s.add_argument("-o", "--output", required=True, metavar="SPEC.yaml", help="the spec to write")
+    s.add_argument("--sensors", metavar="NODE,NODE", help="the nodes that are sensors (default: role sensor or "
+                                                          "level 0, else the nodes no feedforward edge enters)")
+    s.add_argument("--price", type=float, default=0.05, help="price of a link of mean distance (default 0.05)")
+    s.add_argument("--noise", type=float, default=0.02, help="channel noise of a link of mean weight (default 0.02)")
+    s.add_argument("--budget", type=float, metavar="TOTAL", help="also put every link in one budget `total`")
+    s.add_argument("--force", action="store_true", help="replace an existing output file")
+    s.set_defaults(run=cmd_import_graph)
 
     s = sub.add_parser("generate", help="write a synthetic layered circuit (for tests and benchmarks)",
                        description="A world with one block per level, probes at the bottom, residuals and "
@@ -535,7 +626,7 @@ def _check_outputs(args) -> None:
     """Refuse an output that would overwrite an input, or another output."""
     import os
 
-    inputs = [getattr(args, n, None) for n in ("spec", "start", "result")]
+    inputs = [getattr(args, n, None) for n in ("spec", "start", "result", "data", "graph", "template")]
     inputs += list(getattr(args, "specs", None) or [])
     if args.command != "design":
         inputs.append(getattr(args, "gains", None))
@@ -603,7 +694,8 @@ def _check_options(args) -> None:
 
     from .io import check_output
 
-    for name, option in (("spec", "SPEC"), ("gains", "--gains"), ("start", "--start"), ("result", "RESULT")):
+    for name, option in (("spec", "SPEC"), ("gains", "--gains"), ("start", "--start"), ("result", "RESULT"),
+                         ("data", "DATA"), ("graph", "FILE"), ("template", "--template")):
         if not (name == "gains" and args.command == "design"):
             _check_input_path(getattr(args, name, None), option)
     for path in getattr(args, "specs", None) or []:
@@ -629,13 +721,26 @@ def _check_options(args) -> None:
         if not (math.isfinite(args.tie) and 0 <= args.tie < 1):
             _bad_option("--tie", f"a relative tolerance is a number from 0 to below 1; got {args.tie:g}",
                         "use e.g. --tie 1e-5")
+    if args.command == "import-graph":
+        for option in ("price", "noise", "budget"):
+            value = getattr(args, option)
+            if value is not None and not (math.isfinite(value) and 0 <= value <= MAX_VALUE):
+                _bad_option(f"--{option}", f"must be a finite number from 0 to {MAX_VALUE:g}; got {value:g}",
+                            f"give --{option} a value of 0 or more")
+    if args.command == "fit-world":
+        from .fitworld import MAX_LAGS
+
+        _int_between(args, "lags", "--lags", 1, MAX_LAGS)
+        _int_between(args, "whiteness_lags", "--whiteness-lags", 1, 10_000)
     if args.command == "sweep":
         _study_value(args.start, "--from")
         _study_value(args.stop, "--to")
     if args.command in ("phase", "compare"):
         from .studies import parse_range
 
-        for option in ("--x-range", "--y-range") if args.command == "phase" else ("--budgets",):
+        options = ("--x-range", "--y-range") if args.command == "phase" else \
+            ("--prices",) if args.prices is not None else ("--budgets",)
+        for option in options:
             lo, hi, _ = parse_range(getattr(args, option[2:].replace("-", "_")), option)
             _study_value(lo, option)
             _study_value(hi, option)
@@ -650,7 +755,7 @@ def _named_outputs(args) -> list:
         named.append(("--gains", args.gains))
     if args.command == "render":
         named.append(("--output", _render_output(args)))
-    elif args.command == "generate":
+    elif args.command in ("generate", "fit-world", "import-graph"):
         named.append(("--output", args.output))
     if args.command in ("sweep", "phase", "compare"):
         import os

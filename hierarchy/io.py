@@ -156,6 +156,21 @@ def _refuse_unsafe_target(path: str) -> None:
                          fix="choose another path, or make the file writable first (chmod u+w)")
 
 
+def refuse_existing(path, force: bool = False) -> None:
+    """Refuse an output that exists unless ``force``: for commands that write
+    a file a user goes on to edit by hand (a fitted world, an imported
+    spec), where replacing it silently would lose the edits.
+
+    Examples
+    --------
+    >>> refuse_existing("/", force=True)
+    """
+    path = os.fspath(path)
+    if not force and os.path.lexists(path):
+        raise InputError("the file exists; it is left as it is", place=path,
+                         fix="choose another -o, or add --force to replace it")
+
+
 def check_output(path, place: str = "output") -> str:
     """Refuse, before any work, an output path that could not be written:
     empty, ending in '/', a folder, in a missing or unwritable folder, or an

@@ -460,9 +460,12 @@ def compare_figure(study, units=None):
             hi = _mid(totals[i1], totals[i1 + 1], log) if i1 + 1 < n else totals[i1]
             span = bottom.axvspan(lo, hi, color=_colour(labels.index(r["best"])), alpha=0.12, lw=0)
             span.set_gid(f"best:{r['best']}")
-    top.set_xlabel(f"energy used: power of the varied budget ({unit_of('used', units)})")
+    by_price = study.extra.get("form") == "price"
+    top.set_xlabel(f"energy used: power of the {'priced links' if by_price else 'varied budget'} "
+                   f"({unit_of('used', units)})")
     top.set_ylabel(f"weighted error ({unit_of('weighted_error', units)})")
-    bottom.set_xlabel(f"total budget ({unit_of('total', units)})")
+    bottom.set_xlabel("price scale (every link price times this)" if by_price
+                      else f"total budget ({unit_of('total', units)})")
     bottom.set_ylabel("objective above the best\n(% of the spec's own objective)")
     if log:
         top.set_xscale("log")

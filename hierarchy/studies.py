@@ -4,8 +4,9 @@ Three studies share one point runner and one scheduler:
 
 * a **sweep** varies one spec value over a grid and designs every point;
 * a **phase map** varies two values over a grid (which links are silent where);
-* a **comparison** designs several specs in budget form over a range of total
-  budgets (which architecture wins at which budget, and by how much).
+* a **comparison** designs several specs over a range of total budgets, or
+  of scales of their link prices (which architecture wins where, and by how
+  much).
 
 Values are addressed by a *path* on the typed spec (never by editing YAML):
 
@@ -21,6 +22,16 @@ path                           meaning of the number given
 ``world.states[NAME].noise``   process noise of the block: number times identity
 ``world.states[NAME].dynamics`` the block's own dynamics: number times identity
 =============================  ==================================================
+
+A path may select several places at once (a *grouped path*): in place of a
+name write ``*`` (every link, area, sensor, budget or state block of the
+section) or, for links, ``kind:prediction``, ``kind:residual``,
+``from:NODE`` or ``to:NODE``. Every selected place is set to the same number:
+``links[kind:prediction].price`` sweeps every prediction price together
+(``areas[*].weight`` leaves relays out: they have no error to weigh). A
+name of the spec is always read as that name first. A group that selects
+nothing is refused, and the modified spec passes the same checks as a single
+path's.
 
 A noise set by a number replaces the whole covariance by that multiple of the
 identity (a vector link's off-diagonal terms are dropped). Every modified
@@ -112,14 +123,51 @@ _PATH = re.compile(r"^(?P<section>[A-Za-z_.]+)\[(?P<name>[^\[\]]+)\]\.(?P<field>
 
 @dataclass(frozen=True)
 class ValuePath:
-    """A settable number of a spec, e.g. ``links[low->high].price``."""
+    """A settable number of a spec, e.g. ``links[low->high].price``, or a
+    group of them (``links[kind:prediction].price``): ``members`` are the
+    names the path sets (one for a plain path)."""
 
     section: str
     name: str
     field: str
+    members: tuple = ()
 
     def __str__(self) -> str:
         return f"{self.section}[{self.name}].{self.field}"
+
+    @property
+    def grouped(self) -> bool:
+        """Whether the path names a group rather than one place."""
+        return self.members != (self.name,)
+
+
+#: Group selectors a path may hold in place of a name (besides ``*``).
+_SELECTORS = {"links": ("kind", "from", "to")}
+
+
+def _group(spec: Spec, section: str, name: str, text: str):
+    """The names a group selector picks, or ``None`` when ``name`` is not a
+    selector. Raises :class:`InputError` for a selector that picks nothing."""
+    if name == "*":
+        found = _names(spec, section)
+    else:
+        key, colon, value = name.partition(":")
+        if not colon or key not in _SELECTORS.get(section, ()):
+            return None
+        if key == "kind":
+            from .model import LINK_KINDS
+
+            if value not in LINK_KINDS:
+                raise InputError(f"there is no link kind `{value}`{_close(value, LINK_KINDS)}", place=text,
+                                 fix="write kind:prediction or kind:residual")
+        attr = {"kind": "kind", "from": "source", "to": "target"}[key]
+        found = [l.id for l in spec.links if getattr(l, attr) == value]
+    if not found:
+        raise InputError(f"the group `{name}` selects nothing in this spec", place=text,
+                         fix="choose a group that holds at least one " + {
+                             "links": "link", "budgets": "budget", "areas": "area", "sensors": "sensor",
+                             "world.states": "state block"}[section])
+    return tuple(found)
 
 
 def _names(spec: Spec, section: str) -> list:
@@ -197,15 +245,18 @@ def parse_path(spec: Spec, text) -> ValuePath:
         raise InputError(f"there is no section `{section}` to vary{_close(section, _SECTIONS)}",
                          place=str(text), fix="sections: " + ", ".join(_SECTIONS))
     names = _names(spec, section)
-    if name not in names:
+    members = (name,) if name in names else _group(spec, section, name, str(text))
+    if members is None:
         what = {"links": "link", "budgets": "budget", "areas": "area", "sensors": "sensor",
                 "world.states": "state block"}[section]
         raise InputError(f"this spec has no {what} `{name}`{_close(name, names)}", place=str(text),
-                         fix=f"choose one of: {_choices(names)}" if names else f"the spec has no {what}s")
+                         fix=(f"choose one of: {_choices(names)}; or a group: "
+                              + ", ".join(("*",) + tuple(f"{k}:..." for k in _SELECTORS.get(section, ()))))
+                         if names else f"the spec has no {what}s")
     if fld not in _SECTIONS[section]:
         raise InputError(f"`{section}[{name}]` has no settable value `{fld}`{_close(fld, _SECTIONS[section])}",
                          place=str(text), fix="settable here: " + ", ".join(_SECTIONS[section]))
-    return ValuePath(section, name, fld)
+    return ValuePath(section, name, fld, members)
 
 
 def _world_with(world: World, name: str, **changes) -> World:
@@ -229,6 +280,18 @@ def set_value(spec: Spec, path, value) -> Spec:
     >>> cheap = set_value(spec, "links[low->high].price", 0.01)     # doctest: +SKIP
     """
     p = parse_path(spec, path)
+    out = spec
+    v = _number(value, p)
+    members = p.members
+    if p.grouped and p.section == "areas" and p.field == "weight":
+        members = [a for a in members if spec.area(a).has_target]  # a relay has no error to weigh
+    for member in members:
+        out = _set_one(out, ValuePath(p.section, member, p.field, (member,)), v)
+    check_well_posed(out, f"{p} = {v:g}")
+    return out
+
+
+def _number(value, p) -> float:
     try:
         v = float(value)
     except (TypeError, ValueError):
@@ -238,6 +301,11 @@ def set_value(spec: Spec, path, value) -> Spec:
     if v < 0 and p.field != "dynamics":
         raise InputError(f"{p.field} must be at least 0; got {v:g}", place=str(p),
                          fix="keep the range at or above 0")
+    return v
+
+
+def _set_one(spec: Spec, p: ValuePath, v: float) -> Spec:
+    """``spec`` with the one place ``p`` set to ``v`` (not yet checked)."""
     if p.section == "links":
         link = spec.link(p.name)
         new = frozen_array(v * np.eye(link.dim)) if p.field == "noise" else v
@@ -260,7 +328,6 @@ def set_value(spec: Spec, path, value) -> Spec:
         block = next(b for b in spec.world.states if b.name == p.name)
         out = replace(spec, world=_world_with(spec.world, p.name,
                                               **{p.field: frozen_array(v * np.eye(block.dim))}))
-    check_well_posed(out, f"{p} = {v:g}")
     return out
 
 
@@ -1152,6 +1219,10 @@ def phase_map(spec: Spec, x_path, x_values, y_path, y_values, options=None, *, x
     px, py = parse_path(spec, x_path), parse_path(spec, y_path)
     if str(px) == str(py):
         raise InputError("the two axes vary the same value", place=str(px), fix="choose two different paths")
+    both = [m for m in px.members if px.section == py.section and px.field == py.field and m in py.members]
+    if both:
+        raise InputError(f"the two axes both set {px.section}[{both[0]}].{px.field}", place=f"{px} and {py}",
+                         fix="choose groups that do not overlap")
     xs, ys = [float(v) for v in x_values], [float(v) for v in y_values]
     if not xs or not ys:
         raise InputError("a phase map needs points on both axes", place="range", fix="give at least 1 point")
@@ -1256,49 +1327,96 @@ def best_ranges(totals, labels, objectives, converged, tie_rtol=TIE_RTOL) -> lis
     return out
 
 
-def compare(specs, totals, options=None, *, log=False, output=None, workers=None, dask=None, warm=True,
-            progress=False, fresh=False, tie_rtol=TIE_RTOL, labels=None) -> Study:
-    """Design each spec in budget form at every total budget.
+def scale_prices(spec: Spec, factor) -> Spec:
+    """``spec`` with every link's price multiplied by ``factor``, checked for
+    well-posedness (a factor of 0 leaves noisy links free, which is refused).
 
-    Each spec must have a budget named ``total``, or exactly one budget; that
-    budget is set to each value of ``totals`` (its other budgets and prices
-    stay as written). The energy of a design is that budget's power used;
-    its error is the weighted error. The best spec at a total is the one with
-    the lowest objective (weighted error plus any priced terms).
+    Examples
+    --------
+    >>> dear = scale_prices(spec, 10)                                # doctest: +SKIP
+    """
+    f = float(factor)
+    if not (math.isfinite(f) and f >= 0):
+        raise InputError(f"a price scale must be a finite number of at least 0; got {f:g}", place="--prices",
+                         fix="keep the range at or above 0")
+    out = replace(spec, links=tuple(replace(l, price=l.price * f) for l in spec.links))
+    check_well_posed(out, f"every link price x {f:g}")
+    return out
+
+
+def _priced(spec: Spec, label: str) -> list:
+    ids = [l.id for l in spec.links if l.price > 0]
+    if not ids:
+        raise InputError("a comparison over prices scales every link price, and no link of this spec has a price",
+                         place=label, fix="give the links prices, or compare over --budgets")
+    return ids
+
+
+def compare(specs, totals=None, options=None, *, log=False, output=None, workers=None, dask=None, warm=True,
+            progress=False, fresh=False, tie_rtol=TIE_RTOL, labels=None, prices=None) -> Study:
+    """Design each spec at every total budget, or at every scale of its prices.
+
+    Budget form (``totals``): each spec must have a budget named ``total``, or
+    exactly one budget; that budget is set to each value of ``totals`` (its
+    other budgets and prices stay as written). The energy of a design is that
+    budget's power used.
+
+    Price form (``prices``, instead of ``totals``): at each value ``f`` every
+    link price of every spec is multiplied by ``f`` (budgets stay as
+    written). The energy of a design is the power of its priced links.
+
+    Either way the error is the weighted error, and the best spec at a point
+    is the one with the lowest objective (weighted error plus the priced
+    terms). A spec that contains another (the same circuit plus links it may
+    silence) is designed from the other's design wherever it came out worse,
+    so it never loses to it.
 
     Returns
     -------
     Study
         Rows carry ``spec`` (a label: the file's stem), ``budget`` (the
-        total) and ``energy_used``. ``extra["best"]`` is the list of
-        :func:`best_ranges`; ``extra["budgets"]`` the budget varied per
-        spec; ``extra["warnings"]`` notes specs that weigh different errors.
+        total) or ``price_scale`` (the factor), and ``energy_used``.
+        ``extra["best"]`` is the list of :func:`best_ranges`;
+        ``extra["form"]`` is ``"budget"`` or ``"price"``; ``extra["budgets"]``
+        the budget varied per spec (budget form); ``extra["warnings"]`` notes
+        specs that weigh different errors.
 
     Examples
     --------
     >>> st = compare([flat, predictive], grid(0.1, 10, 8, log=True), log=True)   # doctest: +SKIP
+    >>> st = compare([flat, predictive], prices=grid(0.1, 10, 8, log=True))      # doctest: +SKIP
     >>> st.extra["best"]                                                        # doctest: +SKIP
     """
     opts = _opts(options)
     specs = list(specs)
     if len(specs) < 1:
         raise InputError("nothing to compare", place="specs", fix="give two or more spec files")
+    if (totals is None) == (prices is None):
+        raise InputError("a comparison runs over budgets or over prices, one of the two", place="--budgets/--prices",
+                         fix="give either --budgets LO:HI:N or --prices LO:HI:N")
+    form = "budget" if prices is None else "price"
+    coord, option = ("budget", "--budgets") if form == "budget" else ("price_scale", "--prices")
     labels = list(labels) if labels is not None else _labels(specs)
-    totals = [float(t) for t in totals]
-    if not totals:
-        raise InputError("the budget range is empty", place="--budgets", fix="give at least one total")
-    budgets = {lab: varied_budget(s, lab) for lab, s in zip(labels, specs)}
+    values = [float(t) for t in (totals if form == "budget" else prices)]
+    if not values:
+        raise InputError(f"the {'budget' if form == 'budget' else 'price'} range is empty", place=option,
+                         fix="give at least one value")
+    if form == "budget":
+        budgets = {lab: varied_budget(s, lab) for lab, s in zip(labels, specs)}
+        energy = {lab: [f"budgets[{budgets[lab]}].used"] for lab in labels}
+    else:
+        budgets = {}
+        energy = {lab: [f"links[{lid}].power" for lid in _priced(s, lab)] for lab, s in zip(labels, specs)}
     warnings = []
     if len({frozenset(_targets(s)) for s in specs}) > 1:
         warnings.append("the specs do not weigh the same errors (areas, targets, weights or lags differ), "
                         "so their errors measure different things")
-    chains, n = [], len(totals)
+    chains, n = [], len(values)
     for k, (lab, s) in enumerate(zip(labels, specs)):
-        path = f"budgets[{budgets[lab]}].total"
         chain = []
-        for i, t in enumerate(totals):
-            ms = set_value(s, path, t)
-            coords = {"spec": lab, "budget": t}
+        for i, t in enumerate(values):
+            ms = set_value(s, f"budgets[{budgets[lab]}].total", t) if form == "budget" else scale_prices(s, t)
+            coords = {"spec": lab, coord: t}
             chain.append(_Point(k * n + i, ms, coords, _point_key(ms, coords, opts, warm)))
         chains.append(chain)
     from .subcircuit import contains
@@ -1306,15 +1424,16 @@ def compare(specs, totals, options=None, *, log=False, output=None, workers=None
     nested = [(kb * n + i, ks * n + i) for kb, big in enumerate(specs) for ks, small in enumerate(specs)
               if kb != ks and contains(big, small) and not contains(small, big) for i in range(n)]
     study = _run_study("compare", chains, opts, [_spec_info(s, lab) for lab, s in zip(labels, specs)],
-                       [{"path": "budget", "values": totals, "scale": "log" if log else "linear"}],
-                       ["spec", "budget", "energy_used"], specs, output=output, workers=workers, dask=dask,
+                       [{"path": coord, "values": values, "scale": "log" if log else "linear"}],
+                       ["spec", coord, "energy_used"], specs, output=output, workers=workers, dask=dask,
                        warm=warm, progress=progress, fresh=fresh, nested=nested)
     for r in study.rows:
-        r["energy_used"] = r.get(f"budgets[{budgets[r['spec']]}].used")
+        parts = [r.get(c) for c in energy[r["spec"]]]
+        r["energy_used"] = None if any(v is None for v in parts) else float(sum(parts))
     objectives = {lab: [study.rows[k * n + i].get("objective") for i in range(n)] for k, lab in enumerate(labels)}
     conv = {lab: [bool(study.rows[k * n + i].get("converged")) for i in range(n)] for k, lab in enumerate(labels)}
-    study.extra.update({"labels": labels, "budgets": budgets, "warnings": warnings,
-                        "best": best_ranges(totals, labels, objectives, conv, tie_rtol), "tie_rtol": tie_rtol})
+    study.extra.update({"labels": labels, "form": form, "budgets": budgets, "warnings": warnings,
+                        "best": best_ranges(values, labels, objectives, conv, tie_rtol), "tie_rtol": tie_rtol})
     if output is not None:
         study.write(output_base(output))
     return study
@@ -1331,14 +1450,18 @@ def study_text(study: Study, show=None) -> str:
     parts = []
     axes = [a["path"] for a in study.axes]
     if study.kind == "compare":
+        by_price = study.extra.get("form") == "price"
+        coord = "price_scale" if by_price else "budget"
         for lab in study.extra["labels"]:
             rows = [r for r in study.rows if r["spec"] == lab]
-            parts.append(f"{lab} (budget `{study.extra['budgets'][lab]}`):\n" + table(
-                ["budget", "status", "energy used", "weighted error", "objective", "silent"],
-                [[fmt(r["budget"]), r["status"], fmt(r.get("energy_used")), fmt(r.get("weighted_error"), 6),
+            what = "every link price x scale" if by_price else f"budget `{study.extra['budgets'][lab]}`"
+            parts.append(f"{lab} ({what}):\n" + table(
+                [coord.replace("_", " "), "status", "energy used", "weighted error", "objective", "silent"],
+                [[fmt(r[coord]), r["status"], fmt(r.get("energy_used")), fmt(r.get("weighted_error"), 6),
                   fmt(r.get("objective"), 6), ", ".join(r.get("silent_links") or [])] for r in rows]))
-        parts.append("best architecture by budget range (margin: runner-up minus best):\n" + table(
-            ["best", "budgets", "points", "margin", "relative", "all converged"],
+        parts.append(f"best architecture by {'price scale' if by_price else 'budget'} range "
+                     "(margin: runner-up minus best):\n" + table(
+            ["best", "price scales" if by_price else "budgets", "points", "margin", "relative", "all converged"],
             [[b["best"], f"{fmt(b['from'])} .. {fmt(b['to'])}", b["points"],
               _span(b["margin_min"], b["margin_max"], fmt),
               _span(b["relative_min"], b["relative_max"], lambda v: f"{100 * v:.3g}%"),
