@@ -17,9 +17,8 @@ from .closedloop import ClosedLoop, Layout
 from .errors import UnstableError
 from .gains import Gains, check_gains, with_pins
 from .model import Spec
+from .rules import STABLE_RADIUS  # a closed loop is stable below it: the world's margin too
 
-#: A closed loop must have spectral radius below this to count as stable.
-STABLE_RADIUS = 1.0 - 1e-9
 #: Final scores are refused when the Lyapunov residual
 #: ``||Sigma - Phi Sigma Phi' - Gamma Omega Gamma'||_F`` exceeds this times
 #: ``||Sigma||_F + ||Phi Sigma Phi'||_F + ||Gamma Omega Gamma'||_F``.

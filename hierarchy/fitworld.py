@@ -54,6 +54,7 @@ from dataclasses import dataclass, field
 import numpy as np
 
 from .errors import InputError
+from .rules import MAX_NUMBER, STABLE_RADIUS  # the spec's limits: a fitted world must be one a spec holds
 
 __all__ = ["Recording", "WorldFit", "load_recording", "parse_blocks", "parse_zeros", "fit_world",
            "world_dict", "world_yaml", "into_template", "check_world_output", "write_world", "ljung_box", "portmanteau", "fit_text"]
@@ -66,8 +67,6 @@ MAX_LAGS = 50
 #: Residual degrees of freedom needed per equation (common practice, no
 #: source: fewer leaves the noise covariance and the tests meaningless).
 MIN_DOF = 10
-#: Largest number allowed in a spec (docs/spec.md).
-MAX_NUMBER = 1e12
 #: A stability margin below this is reported as a warning (the world's slowest
 #: mode then takes more than 100 steps to decay by 1/e).
 THIN_MARGIN = 0.01
@@ -429,7 +428,7 @@ def fit_world(recording: Recording, blocks=None, *, lags=1, zeros=(), mean=True,
     same = np.equal.outer(np.array(owner, dtype=object), np.array(owner, dtype=object))
     Qs[:n, :n] = np.where(same, Q1, 0.0)  # the model's noise is one covariance per block
     radius = float(np.abs(np.linalg.eigvals(A)).max())
-    if not radius < 1 - 1e-9:
+    if not radius < STABLE_RADIUS:
         _bad(recording.path, f"the fitted dynamics have spectral radius {radius:.6g}: a world with a mode that "
                              "does not decay has no stationary regime",
              "difference the recording (fit the changes from step to step) or remove its trend, then fit again")

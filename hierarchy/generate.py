@@ -29,7 +29,7 @@ import numpy as np
 
 from .errors import InputError
 from .io import atomic_write_text
-from .spec import MAX_LAG, MAX_TOTAL_DIM
+from .rules import MAX_LAG, MAX_TOTAL_DIM
 
 #: Largest circuit the generator writes (the spec reader's own size limits
 #: would refuse much larger ones anyway).

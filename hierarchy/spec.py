@@ -41,6 +41,8 @@ from hierarchy.model import (
     frozen_array,
     frozen_map,
 )
+from hierarchy import rules
+from hierarchy.rules import MAX_LAG, MAX_LEVEL, MAX_NUMBER, MAX_TOTAL_DIM, STABLE_RADIUS  # noqa: F401 (re-exported)
 
 SPEC_VERSION = 1
 SCHEMA_PATH = Path(__file__).with_name("spec-v1.schema.json")
@@ -49,18 +51,6 @@ SCHEMA_PATH = Path(__file__).with_name("spec-v1.schema.json")
 MAX_DOCUMENT = 5_000_000
 #: Largest number of YAML nodes after aliases are expanded (each use counts).
 MAX_NODES = 1_000_000
-#: Limit on the world's total size, on the sum of sensor, area and link sizes.
-MAX_TOTAL_DIM = 5000
-MAX_LAG = 50
-#: Highest drawing level an area may be given (more than any real hierarchy).
-MAX_LEVEL = 1000
-#: A world (and a closed loop, see hierarchy.evaluate) is stable when its
-#: spectral radius is below this: a margin keeps rounding from deciding.
-STABLE_RADIUS = 1.0 - 1e-9
-#: Largest size of any number in a spec. The tool squares and multiplies
-#: them (powers, prices times powers); this keeps every product far from
-#: overflowing double precision.
-MAX_NUMBER = 1e12
 
 # A name appears inside places (``areas.NAME.lag``) and link ids (``A->B``), so
 # it must not contain the characters that build those.
@@ -356,12 +346,7 @@ def _short(value) -> str:
 
 def _bounded(at: _At, x: float) -> float:
     """Refuse numbers too large for the computations that follow."""
-    if abs(x) > MAX_NUMBER:
-        at.fail(f"the number {_short(at.value)} is too large: numbers in a spec "
-                f"are at most {MAX_NUMBER:g} in size",
-                fix="rescale the model (for example measure in other units) so "
-                    "that its numbers are moderate")
-    return x
+    return rules.check_number(x, at.place, at.line, written=_short(at.value))
 
 
 def _is_number_text(text: str) -> bool:
@@ -543,13 +528,7 @@ class _Shorthand:
         if self.form == "zero":
             return np.zeros((rows, cols))
         if self.form == "full":
-            got = self.value.shape
-            if got != (rows, cols):
-                self.at.fail(f"expected a {shape} matrix ({why}), got "
-                             f"{got[0]} x {got[1]}",
-                             fix=f"give {_plural(rows, 'row')} of "
-                                 f"{_plural(cols, 'number')} each")
-            return self.value
+            return rules.check_shape(self.value, rows, cols, why, self.at.place, self.at.line)
         if rows != cols:
             what = ("a flat list is a diagonal matrix" if self.form == "diagonal"
                     else f"`{self.at.value}` stands for a multiple of the identity")
@@ -1006,41 +985,12 @@ def _known(at: _At, name, known, what: str) -> None:
 
 def _check_total(at: _At, sizes, what: str) -> None:
     """Refuse circuits too big to build, before any big matrix is made."""
-    total = sum(sizes)
-    if total > MAX_TOTAL_DIM:
-        at.fail(f"too large: {what} add up to {total}; the limit is "
-                f"{MAX_TOTAL_DIM}", fix="make the blocks smaller")
+    rules.check_total(sizes, what, at.place, at.line)
 
 
 def _covariance(matrix: _Shorthand, n: int, why: str) -> np.ndarray:
     """Expand a covariance and check that it is symmetric and PSD."""
-    cov = matrix.expand(n, n, why)
-    scale = np.abs(cov).max()
-    if np.abs(cov - cov.T).max() > 1e-9 * scale:
-        matrix.at.fail("a covariance must be symmetric, and this one is not",
-                       fix="make entry [i][j] equal to entry [j][i]")
-    eig = _eigenvalues(cov)
-    # Relative to the largest eigenvalue, at any scale (1e-12 noises too).
-    if eig.min() < -1e-10 * np.abs(eig).max():
-        matrix.at.fail(f"a covariance must be positive semidefinite, and this "
-                       f"one has the negative eigenvalue {eig.min():.3g}",
-                       fix="check the signs and make the off-diagonal "
-                           "entries smaller than the diagonal ones")
-    return cov
-
-
-def _eigenvalues(cov: np.ndarray) -> np.ndarray:
-    """Eigenvalues of a symmetric matrix; a diagonal one (every shorthand but
-    a list of lists) needs no decomposition, which matters at size 5000."""
-    diagonal = np.diagonal(cov)
-    if np.count_nonzero(cov) == np.count_nonzero(diagonal):
-        return np.sort(diagonal)
-    return np.linalg.eigvalsh(cov)
-
-
-def _positive_definite(cov: np.ndarray) -> bool:
-    eig = _eigenvalues(cov)
-    return eig.max() > 0 and eig.min() > 1e-12 * eig.max()
+    return rules.check_covariance(matrix.expand(n, n, why), matrix.at.place, matrix.at.line)
 
 
 def _expand_pins(pins: _Fields | None, shapes: dict) -> dict:
@@ -1062,13 +1012,7 @@ def _parse_world(fields: _Fields) -> World:
     _check_total(fields.pos("states"), dims.values(),
                  "the sizes of the world's state blocks")
     world = World(tuple(_state_block(name, f, dims) for name, f in states))
-    radius = float(np.abs(np.linalg.eigvals(world.A)).max())
-    if not radius < STABLE_RADIUS:
-        fields.at.fail(f"the world's dynamics have spectral radius "
-                       f"{radius:.12g}; a stationary regime needs < 1",
-                       fix="shrink the dynamics (and driven_by blocks) so that "
-                           "every mode decays, e.g. 0.99 instead of 1 for a "
-                           "slow drift")
+    rules.check_world(world, fields.at.place, fields.at.line)
     return world
 
 
@@ -1369,41 +1313,15 @@ def _select_links(at: _At, choice: tuple, links: tuple, node_dims: dict):
 
 
 def _check_costs(drafts: list, links: tuple, budgets: tuple) -> None:
-    """Every noisy link needs a cost, and every costed link needs noise.
+    """Every noisy link needs a cost, and every costed link needs noise
+    (:func:`hierarchy.rules.check_costs`), named at its place in the file."""
+    by_id = {draft.id: draft for draft in drafts}
 
-    Without noise, energy is free (shrink the sender, grow the receiver);
-    without a price or budget, a louder noisy link is always better. Either
-    way the optimum does not exist.
-    """
-    budget_of = {}
-    for budget in budgets:
-        for link_id in budget.links:
-            budget_of.setdefault(link_id, budget.name)
-    ids = {link.id: link for link in links}
-    for draft, link in zip(drafts, links):
-        if link.price > 0 or link.id in budget_of:
-            why = (f"has price {link.price:g}" if link.price > 0
-                   else f"is in budget `{budget_of[link.id]}`")
-            if not _positive_definite(link.noise):
-                draft.fields.pos("noise").fail(
-                    f"this link {why}, but its channel noise is not positive "
-                    f"definite; on a noiseless channel energy is free, so no "
-                    f"optimum exists",
-                    fix="give the channel noise, e.g. `noise: 0.01`")
-        elif np.any(link.noise) and not _sender_pinned(link, ids):
-            draft.fields.at.fail(
-                "this link is noisy but has no price and is in no budget: "
-                "sending louder is then always better and free, so no "
-                "optimum exists",
-                fix="give it a price (e.g. `price: 0.1`) or put it in a budget")
+    def where(link, key):
+        pos = by_id[link.id].fields.pos(key) if key else by_id[link.id].fields.at
+        return pos.place, pos.line
 
-
-def _sender_pinned(link: Link, links_by_id: dict) -> bool:
-    if link.kind == PREDICTION:
-        return "G" in link.pin
-    pair = links_by_id.get(f"{link.target}->{link.source}")
-    has_pair = pair is not None and pair.kind == PREDICTION
-    return "S" in link.pin and ("P" in link.pin or not has_pair)
+    rules.check_costs(links, budgets, where)
 
 
 def _warnings(drafts: list, links: tuple, sensor_names: set) -> tuple:

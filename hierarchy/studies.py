@@ -89,10 +89,11 @@ from typing import Mapping
 
 import numpy as np
 
+from . import rules
 from .blas import single_thread
 from .errors import HierarchyError, InputError
 from .io import atomic_write_text
-from .model import PREDICTION, Spec, World, frozen_array, frozen_map
+from .model import Spec, World, frozen_array, frozen_map
 
 STUDY_FORMAT = "hierarchy-study"
 STUDY_VERSION = 1
@@ -287,7 +288,7 @@ def set_value(spec: Spec, path, value) -> Spec:
         members = [a for a in members if spec.area(a).has_target]  # a relay has no error to weigh
     for member in members:
         out = _set_one(out, ValuePath(p.section, member, p.field, (member,)), v)
-    check_well_posed(out, f"{p} = {v:g}")
+    rules.check_spec(out, place=f"{p} = {v:.12g}", error=InputError)
     return out
 
 
@@ -329,46 +330,6 @@ def _set_one(spec: Spec, p: ValuePath, v: float) -> Spec:
         out = replace(spec, world=_world_with(spec.world, p.name,
                                               **{p.field: frozen_array(v * np.eye(block.dim))}))
     return out
-
-
-def _positive_definite(cov) -> bool:
-    eig = np.linalg.eigvalsh(cov)
-    return eig.max() > 0 and eig.min() > 1e-12 * eig.max()
-
-
-def _sender_pinned(spec: Spec, link) -> bool:
-    if link.kind == PREDICTION:
-        return "G" in link.pin
-    back = f"{link.target}->{link.source}"
-    paired = any(l.id == back and l.kind == PREDICTION for l in spec.links)
-    return "S" in link.pin and ("P" in link.pin or not paired)
-
-
-def check_well_posed(spec: Spec, place: str) -> None:
-    """The rules of docs/spec.md ("Well-posed circuits") and the world's
-    stability, on a spec built in Python. Raises :class:`InputError` at
-    ``place``."""
-    radius = float(np.abs(np.linalg.eigvals(spec.world.A)).max()) if spec.world.dim else 0.0
-    if radius >= 1:
-        raise InputError(f"the world's dynamics would have spectral radius {radius:.6g}; "
-                         "a stationary regime needs < 1", place=place,
-                         fix="keep the range so that every mode decays")
-    budget_of = {}
-    for b in spec.budgets:
-        for lid in b.links:
-            budget_of.setdefault(lid, b.name)
-    for link in spec.links:
-        if link.price > 0 or link.id in budget_of:
-            why = f"has price {link.price:g}" if link.price > 0 else f"is in budget `{budget_of[link.id]}`"
-            if not _positive_definite(link.noise):
-                raise InputError(f"link {link.id} {why}, but its channel noise would not be positive "
-                                 "definite; on a noiseless channel energy is free, so no optimum exists",
-                                 place=place, fix="keep the link's noise above 0 over the whole range")
-        elif np.any(link.noise) and not _sender_pinned(spec, link):
-            raise InputError(f"link {link.id} would be noisy with no price and in no budget: sending "
-                             "louder is then always better and free, so no optimum exists",
-                             place=place, fix="keep the price above 0 over the whole range, or put the link "
-                                              "in a budget")
 
 
 # ---------------------------------------------------------------------------
@@ -1340,7 +1301,7 @@ def scale_prices(spec: Spec, factor) -> Spec:
         raise InputError(f"a price scale must be a finite number of at least 0; got {f:g}", place="--prices",
                          fix="keep the range at or above 0")
     out = replace(spec, links=tuple(replace(l, price=l.price * f) for l in spec.links))
-    check_well_posed(out, f"every link price x {f:g}")
+    rules.check_spec(out, place=f"every link price x {f:g}", error=InputError)
     return out
 
 

@@ -1,0 +1,314 @@
+"""The rules of a well-posed circuit, on the typed objects of :mod:`hierarchy.model`.
+
+This is the one home of every rule about a :class:`~hierarchy.model.Spec`
+that does not need the positions of a YAML file: the numeric limits, the
+stability margin, covariances, matrix shapes, the world's stationarity and
+the costs of noisy links. The spec reader (:mod:`hierarchy.spec`) calls these
+checks with the place and line of the file; value-path edits in
+:mod:`hierarchy.studies` and specs built in Python call :func:`check_spec`.
+So a rule is written once and refuses the same thing, with the same words,
+wherever a spec comes from.
+
+Every check raises :class:`~hierarchy.errors.SpecError` (or, when asked,
+:class:`~hierarchy.errors.InputError`) with a place and a fix.
+"""
+
+from __future__ import annotations
+
+import math
+
+import numpy as np
+
+from .errors import InputError, SpecError
+from .model import PREDICTION, Link, Spec, World
+
+__all__ = [
+    "STABLE_RADIUS",
+    "MAX_TOTAL_DIM",
+    "MAX_LAG",
+    "MAX_LEVEL",
+    "MAX_NUMBER",
+    "eigenvalues",
+    "positive_definite",
+    "sender_pinned",
+    "check_number",
+    "check_total",
+    "check_shape",
+    "check_covariance",
+    "check_world",
+    "check_costs",
+    "check_spec",
+]
+
+#: A world (and a closed loop, see :mod:`hierarchy.evaluate`) is stable when
+#: its spectral radius is below this: a margin keeps rounding from deciding.
+STABLE_RADIUS = 1.0 - 1e-9
+#: Limit on the world's total size, on the sum of sensor, area and link sizes.
+MAX_TOTAL_DIM = 5000
+#: Largest lag of an area.
+MAX_LAG = 50
+#: Highest drawing level an area may be given (more than any real hierarchy).
+MAX_LEVEL = 1000
+#: Largest size of any number in a spec. The tool squares and multiplies
+#: them (powers, prices times powers); this keeps every product far from
+#: overflowing double precision.
+MAX_NUMBER = 1e12
+
+
+def _refuse(message, fix, place, line=None, error=SpecError):
+    """Raise ``error`` (:class:`SpecError` or :class:`InputError`)."""
+    if error is InputError:
+        raise InputError(message, place=place, fix=fix, line=line)
+    raise SpecError(message, place=place, fix=fix, line=line)
+
+
+def _plural(n: int, word: str) -> str:
+    return f"{n} {word}" if n == 1 else f"{n} {word}s"
+
+
+def eigenvalues(cov: np.ndarray) -> np.ndarray:
+    """Eigenvalues of a symmetric matrix, in ascending order.
+
+    A diagonal matrix (every shorthand but a list of lists) needs no
+    decomposition, which matters at size 5000.
+
+    Examples
+    --------
+    >>> eigenvalues(np.diag([2.0, 1.0]))
+    array([1., 2.])
+    """
+    diagonal = np.diagonal(cov)
+    if np.count_nonzero(cov) == np.count_nonzero(diagonal):
+        return np.sort(diagonal)
+    return np.linalg.eigvalsh(cov)
+
+
+def positive_definite(cov: np.ndarray) -> bool:
+    """Whether a covariance is positive definite (relative to its scale).
+
+    Examples
+    --------
+    >>> positive_definite(np.diag([1.0, 1e-3])), positive_definite(np.diag([1.0, 0.0]))
+    (True, False)
+    """
+    if cov.size == 0:
+        return False
+    eig = eigenvalues(cov)
+    return eig.max() > 0 and eig.min() > 1e-12 * eig.max()
+
+
+def sender_pinned(link: Link, links_by_id: dict) -> bool:
+    """Whether every gain that sets the power of ``link`` is pinned.
+
+    A noisy link whose sender is pinned cannot be made louder, so it needs no
+    price: its power is not a design choice.
+    """
+    if link.kind == PREDICTION:
+        return "G" in link.pin
+    pair = links_by_id.get(f"{link.target}->{link.source}")
+    has_pair = pair is not None and pair.kind == PREDICTION
+    return "S" in link.pin and ("P" in link.pin or not has_pair)
+
+
+def check_number(x, place, line=None, error=SpecError, minimum=None, written=None) -> float:
+    """Refuse a number that is not finite, too large for the computations
+    that follow (above :data:`MAX_NUMBER` in size), or below ``minimum``.
+
+    ``written`` is the number as the user wrote it, for the message.
+    """
+    text = written if written is not None else f"{x:g}"
+    if not math.isfinite(x):
+        _refuse(f"expected a finite number, got {text}", "write an ordinary number (no .inf or .nan)",
+                place, line, error)
+    if abs(x) > MAX_NUMBER:
+        _refuse(f"the number {text} is too large: numbers in a spec are at most {MAX_NUMBER:g} in size",
+                "rescale the model (for example measure in other units) so that its numbers are moderate",
+                place, line, error)
+    if minimum is not None and x < minimum:
+        _refuse(f"must be at least {minimum:g}, got {text}", f"use a value of {minimum:g} or more",
+                place, line, error)
+    return x
+
+
+def _check_entries(matrix: np.ndarray, place, error) -> None:
+    """Every entry of a matrix is finite and at most MAX_NUMBER in size."""
+    if matrix.size and not (np.isfinite(matrix).all() and np.abs(matrix).max() <= MAX_NUMBER):
+        bad = matrix.flat[int(np.argmax(~np.isfinite(matrix.ravel()) | (np.abs(matrix.ravel()) > MAX_NUMBER)))]
+        check_number(float(bad), place, None, error)
+
+
+def check_total(sizes, what: str, place, line=None, error=SpecError) -> None:
+    """Refuse circuits too big to build, before any big matrix is made."""
+    total = sum(sizes)
+    if total > MAX_TOTAL_DIM:
+        _refuse(f"too large: {what} add up to {total}; the limit is {MAX_TOTAL_DIM}",
+                "make the blocks smaller", place, line, error)
+
+
+def check_shape(matrix: np.ndarray, rows: int, cols: int, why: str, place, line=None,
+                error=SpecError) -> np.ndarray:
+    """Refuse a matrix that is not ``rows x cols``; ``why`` says where the
+    shape comes from."""
+    got = np.shape(matrix)
+    if got != (rows, cols):
+        shape = f"{rows} x {cols}"
+        got = tuple(got) + (1,) * (2 - len(got))
+        _refuse(f"expected a {shape} matrix ({why}), got {got[0]} x {got[1]}",
+                f"give {_plural(rows, 'row')} of {_plural(cols, 'number')} each", place, line, error)
+    return matrix
+
+
+def check_covariance(cov: np.ndarray, place, line=None, error=SpecError) -> np.ndarray:
+    """Refuse a covariance that is not symmetric and positive semidefinite
+    (both up to rounding, relative to the matrix's scale)."""
+    if cov.size == 0:
+        return cov
+    scale = np.abs(cov).max()
+    if np.abs(cov - cov.T).max() > 1e-9 * scale:
+        _refuse("a covariance must be symmetric, and this one is not",
+                "make entry [i][j] equal to entry [j][i]", place, line, error)
+    eig = eigenvalues(cov)
+    # Relative to the largest eigenvalue, at any scale (1e-12 noises too).
+    if eig.min() < -1e-10 * np.abs(eig).max():
+        _refuse(f"a covariance must be positive semidefinite, and this one has the negative eigenvalue "
+                f"{eig.min():.3g}",
+                "check the signs and make the off-diagonal entries smaller than the diagonal ones",
+                place, line, error)
+    return cov
+
+
+def check_world(world: World, place="world", line=None, error=SpecError) -> float:
+    """Refuse a world with no stationary regime: its spectral radius must be
+    below :data:`STABLE_RADIUS`. Returns the radius."""
+    A = world.A
+    radius = float(np.abs(np.linalg.eigvals(A)).max()) if A.size else 0.0
+    if not radius < STABLE_RADIUS:
+        _refuse(f"the world's dynamics have spectral radius {radius:.12g}; a stationary regime needs < 1",
+                "shrink the dynamics (and driven_by blocks) so that every mode decays, e.g. 0.99 instead "
+                "of 1 for a slow drift", place, line, error)
+    return radius
+
+
+def _link_place(link, key):
+    return (f"links[{link.id}].{key}" if key else f"links[{link.id}]"), None
+
+
+def check_costs(links, budgets, where=_link_place, error=SpecError) -> None:
+    """Every noisy link needs a cost, and every costed link needs noise.
+
+    Without noise, energy is free (shrink the sender, grow the receiver);
+    without a price or budget, a louder noisy link is always better. Either
+    way the optimum does not exist. A noisy link whose sender is pinned
+    (:func:`sender_pinned`) needs no cost.
+
+    Parameters
+    ----------
+    links, budgets : sequence of Link, sequence of Budget
+    where : callable, optional
+        ``where(link, key) -> (place, line)``: the place of a link (``key``
+        ``""``) or of one of its keys (``"noise"``) in messages.
+    error : type
+        :class:`SpecError` (default) or :class:`InputError`.
+    """
+    budget_of = {}
+    for budget in budgets:
+        for link_id in budget.links:
+            budget_of.setdefault(link_id, budget.name)
+    ids = {link.id: link for link in links}
+    for link in links:
+        if link.price > 0 or link.id in budget_of:
+            why = (f"has price {link.price:g}" if link.price > 0
+                   else f"is in budget `{budget_of[link.id]}`")
+            if not positive_definite(link.noise):
+                _refuse(f"this link {why}, but its channel noise is not positive definite; on a noiseless "
+                        f"channel energy is free, so no optimum exists",
+                        "give the channel noise, e.g. `noise: 0.01`", *where(link, "noise"), error)
+        elif np.any(link.noise) and not sender_pinned(link, ids):
+            _refuse("this link is noisy but has no price and is in no budget: sending louder is then always "
+                    "better and free, so no optimum exists",
+                    "give it a price (e.g. `price: 0.1`) or put it in a budget", *where(link, ""), error)
+
+
+def check_spec(spec: Spec, place=None, error=SpecError) -> Spec:
+    """Check a whole circuit against every rule of this module.
+
+    This is what a spec built in Python (the dataclasses of
+    :mod:`hierarchy.model`) or edited by a study goes through; the spec
+    reader applies the same rules section by section.
+
+    Parameters
+    ----------
+    spec : Spec
+    place : str, optional
+        What was done to the spec, e.g. ``world.states[x].dynamics = 0.99``:
+        messages then say ``PLACE (PART)``, where PART is the part of the spec
+        that breaks a rule (``world``, ``links[a->b].noise``). Without it
+        they name the part alone.
+    error : type
+        :class:`SpecError` (default) or :class:`InputError`.
+
+    Returns
+    -------
+    Spec
+        ``spec`` itself, when it is well posed.
+
+    Examples
+    --------
+    >>> from hierarchy.model import StateBlock, World, Sensor, Area, Spec, frozen_array
+    >>> world = World((StateBlock("x", 1, frozen_array([[1.0]]), frozen_array([[1.0]])),))
+    >>> check_spec(Spec("drift", world, (Sensor("eye", {"x": frozen_array([[1.0]])}, frozen_array([[0.1]])),),
+    ...                 (Area("v", 1, ("x",)),)))
+    Traceback (most recent call last):
+    ...
+    hierarchy.errors.SpecError: world: the world's dynamics have spectral radius 1; a stationary regime needs < 1
+      fix: shrink the dynamics (and driven_by blocks) so that every mode decays, e.g. 0.99 instead of 1 for a slow drift
+    """
+    def at(part):
+        return f"{place} ({part})" if place else part
+
+    world = spec.world
+    check_total([b.dim for b in world.states], "the sizes of the world's state blocks", at("world"), None, error)
+    check_total([s.dim for s in spec.sensors], "the sensors' sizes", at("sensors"), None, error)
+    check_total([a.dim for a in spec.areas], "the areas' sizes", at("areas"), None, error)
+    check_total([link.dim for link in spec.links], "the links' sizes", at("links"), None, error)
+    sizes = {b.name: b.dim for b in world.states}
+    for b in world.states:
+        why = f"the state `{b.name}` has size {b.dim}"
+        for key, matrix in (("dynamics", b.dynamics), ("noise", b.noise)):
+            where = at(f"world.states[{b.name}].{key}")
+            check_shape(matrix, b.dim, b.dim, why, where, None, error)
+            _check_entries(matrix, where, error)
+        for other, matrix in b.driven_by.items():
+            where = at(f"world.states[{b.name}].driven_by.{other}")
+            check_shape(matrix, b.dim, sizes[other], f"rows: `{b.name}` has size {b.dim}; columns: "
+                                                     f"`{other}` has size {sizes[other]}", where, None, error)
+            _check_entries(matrix, where, error)
+        check_covariance(b.noise, at(f"world.states[{b.name}].noise"), None, error)
+    for s in spec.sensors:
+        for state, matrix in s.observes.items():
+            where = at(f"sensors[{s.name}].observes.{state}")
+            check_shape(matrix, s.dim, sizes[state], f"rows: sensor `{s.name}` has size {s.dim}; columns: "
+                                                     f"state `{state}` has size {sizes[state]}",
+                        where, None, error)
+            _check_entries(matrix, where, error)
+        _check_entries(s.noise, at(f"sensors[{s.name}].noise"), error)
+        check_covariance(s.noise, at(f"sensors[{s.name}].noise"), None, error)
+    for a in spec.areas:
+        for key in ("weight", "activity_price"):
+            check_number(float(getattr(a, key)), at(f"areas[{a.name}].{key}"), None, error, minimum=0.0)
+    for link in spec.links:
+        where = at(f"links[{link.id}].noise")
+        check_shape(link.noise, link.dim, link.dim, f"the link carries {link.dim} numbers", where, None, error)
+        _check_entries(link.noise, where, error)
+        check_covariance(link.noise, where, None, error)
+        check_number(float(link.price), at(f"links[{link.id}].price"), None, error, minimum=0.0)
+    for b in spec.budgets:
+        check_number(float(b.total), at(f"budgets[{b.name}].total"), None, error, minimum=0.0)
+    check_world(world, at("world"), None, error)
+
+    def link_place(link, key):
+        place_, _ = _link_place(link, key)
+        return at(place_), None
+
+    check_costs(spec.links, spec.budgets, link_place, error)
+    return spec
