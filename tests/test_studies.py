@@ -157,7 +157,7 @@ def test_bad_paths_name_the_path_and_the_choices(path, words):
 
 @pytest.mark.parametrize("spec_file, path, value, words", [
     ("two-senses.yaml", "links[camera-view->fused].noise", 0.0, ["in budget `upward`", "positive definite"]),
-    ("two-level.yaml", "links[probe->station-view].price", 0.0, ["no price and in no budget"]),
+    ("two-level.yaml", "links[probe->station-view].price", 0.0, ["no price and is in no budget"]),  # the reader's words
     ("two-level.yaml", "world.states[upstream].dynamics", 1.0, ["spectral radius"]),
     ("two-level.yaml", "budgets[none].total", 1.0, ["has no budget `none`", "no budgets"]),
 ])
