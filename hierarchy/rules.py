@@ -15,6 +15,7 @@ Every check raises :class:`~hierarchy.errors.SpecError` (or, when asked,
 
 from __future__ import annotations
 
+import difflib
 import math
 
 import numpy as np
@@ -28,14 +29,19 @@ __all__ = [
     "MAX_LAG",
     "MAX_LEVEL",
     "MAX_NUMBER",
+    "suggest",
     "eigenvalues",
     "positive_definite",
     "sender_pinned",
+    "check_known",
+    "check_whole",
     "check_number",
     "check_total",
     "check_shape",
     "check_covariance",
     "check_world",
+    "check_area",
+    "check_lag_depth",
     "check_costs",
     "check_spec",
 ]
@@ -66,6 +72,39 @@ def _plural(n: int, word: str) -> str:
     return f"{n} {word}" if n == 1 else f"{n} {word}s"
 
 
+def suggest(word, known) -> str:
+    """A fix sentence pointing at the nearest known word, or listing them all.
+
+    Examples
+    --------
+    >>> suggest("v2", ["v1", "top"])
+    'did you mean `v1`? (known here: v1, top)'
+    """
+    known = [str(k) for k in known]
+    close = difflib.get_close_matches(str(word), known, n=1)
+    listing = ", ".join(known) if known else "(none)"
+    if close:
+        return f"did you mean `{close[0]}`? (known here: {listing})"
+    return f"use one of: {listing}"
+
+
+def check_known(name, known, what: str, place, line=None, error=SpecError) -> None:
+    """Refuse a reference to a ``what`` (state, sensor or area, link) that does not exist."""
+    if name not in known:
+        _refuse(f"there is no {what} called `{name}`", suggest(name, known), place, line, error)
+
+
+def check_whole(x: int, minimum: int, maximum, place, line=None, error=SpecError, written=None) -> int:
+    """Refuse a whole number (a size, a lag, a level) out of its range."""
+    text = written if written is not None else str(x)
+    if x < minimum:
+        _refuse(f"must be at least {minimum}, got {text}", f"use a whole number of {minimum} or more",
+                place, line, error)
+    if maximum is not None and x > maximum:
+        _refuse(f"too large: {text}; the limit is {maximum}", f"use at most {maximum}", place, line, error)
+    return x
+
+
 def eigenvalues(cov: np.ndarray) -> np.ndarray:
     """Eigenvalues of a symmetric matrix, in ascending order.
 
@@ -94,7 +133,7 @@ def positive_definite(cov: np.ndarray) -> bool:
     if cov.size == 0:
         return False
     eig = eigenvalues(cov)
-    return eig.max() > 0 and eig.min() > 1e-12 * eig.max()
+    return bool(eig.max() > 0 and eig.min() > 1e-12 * eig.max())
 
 
 def sender_pinned(link: Link, links_by_id: dict) -> bool:
@@ -189,6 +228,39 @@ def check_world(world: World, place="world", line=None, error=SpecError) -> floa
     return radius
 
 
+def check_area(area, sizes: dict, where=None, error=SpecError) -> None:
+    """An area holds what it tracks, and only an area that tracks something
+    has an error to weigh and a lag.
+
+    ``sizes`` maps state names to their sizes; ``where(key) -> (place, line)``
+    names the area's keys (default ``areas[NAME].KEY``).
+    """
+    if where is None:
+        def where(key):
+            return f"areas[{area.name}].{key}", None
+    tracked = sum(sizes[name] for name in area.tracks)
+    if area.dim < tracked:
+        _refuse(f"the area tracks {tracked} state dimensions, so its dim must be at least {tracked}; "
+                f"got {area.dim}", f"use dim: {tracked} or more (the extra coordinates are private memory)",
+                *where("dim"), error)
+    if area.weight > 0 and not area.tracks:
+        _refuse("an area that tracks nothing has no error to weigh",
+                "remove `weight`, or add `tracks: STATE`", *where("weight"), error)
+    if area.lag > 0 and not area.tracks:
+        _refuse("a lag only applies to an area that tracks something",
+                "remove `lag`, or add `tracks: STATE`", *where("lag"), error)
+
+
+def check_lag_depth(world_dim: int, lag: int, place, line=None, error=SpecError) -> None:
+    """A lag L keeps L delayed copies of the whole world in the closed loop:
+    world size x (L + 1) is at most :data:`MAX_TOTAL_DIM`."""
+    if world_dim * (lag + 1) > MAX_TOTAL_DIM:
+        _refuse(f"too large: lag {lag} keeps {lag} delayed copies of the world (size {world_dim}), "
+                f"{world_dim * (lag + 1)} numbers in all; the limit is {MAX_TOTAL_DIM}",
+                f"use a lag of at most {MAX_TOTAL_DIM // world_dim - 1}, or a smaller world",
+                place, line, error)
+
+
 def _link_place(link, key):
     return (f"links[{link.id}].{key}" if key else f"links[{link.id}]"), None
 
@@ -272,6 +344,36 @@ def check_spec(spec: Spec, place=None, error=SpecError) -> Spec:
     check_total([a.dim for a in spec.areas], "the areas' sizes", at("areas"), None, error)
     check_total([link.dim for link in spec.links], "the links' sizes", at("links"), None, error)
     sizes = {b.name: b.dim for b in world.states}
+    nodes = [s.name for s in spec.sensors] + [a.name for a in spec.areas]
+    for what, items in (("states", world.states), ("sensors", spec.sensors), ("areas", spec.areas),
+                        ("links", spec.links)):
+        for item in items:
+            name = item.id if what == "links" else item.name
+            check_whole(item.dim, 1, MAX_TOTAL_DIM, at(f"{'world.' if what == 'states' else ''}{what}[{name}].dim"),
+                        None, error)
+    for b in world.states:
+        for other in b.driven_by:
+            check_known(other, sizes, "state", at(f"world.states[{b.name}].driven_by"), None, error)
+    for s in spec.sensors:
+        for state in s.observes:
+            check_known(state, sizes, "state", at(f"sensors[{s.name}].observes"), None, error)
+    for a in spec.areas:
+        for state in a.tracks:
+            check_known(state, sizes, "state", at(f"areas[{a.name}].tracks"), None, error)
+        check_whole(a.lag, 0, MAX_LAG, at(f"areas[{a.name}].lag"), None, error)
+        if a.level is not None:
+            check_whole(a.level, 1, MAX_LEVEL, at(f"areas[{a.name}].level"), None, error)
+        check_area(a, sizes, lambda key, a=a: (at(f"areas[{a.name}].{key}"), None), error)
+    if spec.areas:
+        deepest = max(spec.areas, key=lambda a: a.lag)
+        check_lag_depth(world.dim, deepest.lag, at(f"areas[{deepest.name}].lag"), None, error)
+    for link in spec.links:
+        for end in (link.source, link.target):
+            check_known(end, nodes, "sensor or area", at(f"links[{link.id}]"), None, error)
+    link_ids = [link.id for link in spec.links]
+    for b in spec.budgets:
+        for link_id in b.links:
+            check_known(link_id, link_ids, "link", at(f"budgets[{b.name}].links"), None, error)
     for b in world.states:
         why = f"the state `{b.name}` has size {b.dim}"
         for key, matrix in (("dynamics", b.dynamics), ("noise", b.noise)):

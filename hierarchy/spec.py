@@ -13,7 +13,6 @@ the file (``links[2] (low->high).noise``), the line where known, and a fix.
 from __future__ import annotations
 
 import argparse
-import difflib
 import json
 import math
 import os
@@ -42,6 +41,7 @@ from hierarchy.model import (
     frozen_map,
 )
 from hierarchy import rules
+from hierarchy.rules import suggest as _suggest
 from hierarchy.rules import MAX_LAG, MAX_LEVEL, MAX_NUMBER, MAX_TOTAL_DIM, STABLE_RADIUS  # noqa: F401 (re-exported)
 
 SPEC_VERSION = 1
@@ -108,16 +108,6 @@ def _describe(value) -> str:
     if isinstance(value, list):
         return "a list"
     return f"a {type(value).__name__}"
-
-
-def _suggest(word, known) -> str:
-    """A fix sentence pointing at the nearest known word, or listing them all."""
-    known = [str(k) for k in known]
-    close = difflib.get_close_matches(str(word), known, n=1)
-    listing = ", ".join(known) if known else "(none)"
-    if close:
-        return f"did you mean `{close[0]}`? (known here: {listing})"
-    return f"use one of: {listing}"
 
 
 def _plural(n: int, word: str) -> str:
@@ -400,13 +390,8 @@ class _Int(_Kind):
         if not x.is_integer():
             at.fail(f"expected a whole number, got {at.value}",
                     fix="write a whole number such as 2")
-        if x < self.minimum:
-            at.fail(f"must be at least {self.minimum}, got {at.value}",
-                    fix=f"use a whole number of {self.minimum} or more")
-        if self.maximum is not None and x > self.maximum:
-            at.fail(f"too large: {at.value}; the limit is {self.maximum}",
-                    fix=f"use at most {self.maximum}")
-        return int(x)
+        return rules.check_whole(int(x), self.minimum, self.maximum, at.place, at.line,
+                                 written=str(at.value))
 
 
 @dataclass(frozen=True)
@@ -979,8 +964,7 @@ def spec_schema() -> dict:
 
 
 def _known(at: _At, name, known, what: str) -> None:
-    if name not in known:
-        at.fail(f"there is no {what} called `{name}`", fix=_suggest(name, known))
+    rules.check_known(name, known, what, at.place, at.line)
 
 
 def _check_total(at: _At, sizes, what: str) -> None:
@@ -1093,14 +1077,8 @@ def _parse_areas(pairs: list, at: _At, world: World, sensors: tuple) -> tuple:
     areas = tuple(_area(*draft) for draft in drafts)
     # A lag L keeps L delayed copies of the whole world in the closed loop.
     deepest = max(areas, key=lambda a: a.lag)
-    if world.dim * (deepest.lag + 1) > MAX_TOTAL_DIM:
-        f = next(f for name, f, *_ in drafts if name == deepest.name)
-        f.pos("lag").fail(
-            f"too large: lag {deepest.lag} keeps {deepest.lag} delayed copies of "
-            f"the world (size {world.dim}), {world.dim * (deepest.lag + 1)} "
-            f"numbers in all; the limit is {MAX_TOTAL_DIM}",
-            fix=f"use a lag of at most {MAX_TOTAL_DIM // world.dim - 1}, or a "
-                f"smaller world")
+    lag = next(f for name, f, *_ in drafts if name == deepest.name).pos("lag")
+    rules.check_lag_depth(world.dim, deepest.lag, lag.place, lag.line)
     return areas
 
 
@@ -1114,28 +1092,24 @@ def _area_draft(name: str, f: _Fields, sizes: dict, sensor_names: set):
     tracked = sum(sizes[state.value] for state in tracks)
     if f.given("dim"):
         dim = f.get("dim")
-        if dim < tracked:
-            f.pos("dim").fail(f"the area tracks {tracked} state dimensions, "
-                              f"so its dim must be at least {tracked}; got {dim}",
-                              fix=f"use dim: {tracked} or more (the extra "
-                                  f"coordinates are private memory)")
     elif tracks:
         dim = tracked
     else:
         f.at.fail(f"area `{name}` tracks nothing, so its size must be given",
                   fix="add `dim: N` for a free relay, or `tracks: STATE`")
-    return name, f, tuple(state.value for state in tracks), dim
+    tracks = tuple(state.value for state in tracks)
+    # The size rule now, before the sections' totals; weight and lag in _area.
+    rules.check_area(Area(name=name, dim=dim, tracks=tracks), sizes,
+                     lambda key: (f.pos(key).place, f.pos(key).line))
+    return name, f, tracks, dim
 
 
 def _area(name: str, f: _Fields, tracks: tuple, dim: int) -> Area:
     weight = f.get("weight") if f.given("weight") else float(bool(tracks))
-    if weight > 0 and not tracks:
-        f.pos("weight").fail("an area that tracks nothing has no error to weigh",
-                             fix="remove `weight`, or add `tracks: STATE`")
     lag = f.get("lag")
-    if lag > 0 and not tracks:
-        f.pos("lag").fail("a lag only applies to an area that tracks something",
-                          fix="remove `lag`, or add `tracks: STATE`")
+    sizes = {state: 0 for state in tracks}  # _area_draft checked the tracked size
+    rules.check_area(Area(name=name, dim=dim, tracks=tracks, weight=weight, lag=lag), sizes,
+                     lambda key: (f.pos(key).place, f.pos(key).line))
     pin = _expand_pins(f.get("pin"),
                        {"M": (dim, dim, f"area `{name}` has size {dim}")})
     return Area(name=name, dim=dim, tracks=tracks, weight=weight, lag=lag,

@@ -48,7 +48,7 @@ def test_a_group_sets_every_selected_place_as_single_paths_would():
 @pytest.mark.parametrize("path, value, words", [
     ("links[kind:predicton].price", 0.1, ["no link kind `predicton`", "did you mean `prediction`"]),
     ("links[to:nowhere].price", 0.1, ["`to:nowhere` selects nothing"]),
-    ("links[*].price", 0.0, ["noisy with no price"]),  # the same well-posedness check as a single path
+    ("links[*].price", 0.0, ["noisy but has no price"]),  # the same rule as the reader and a single path
     ("links[*].colour", 0.1, ["no settable value `colour`"]),
     ("links[*].noise", -1, ["at least 0"]),
 ])

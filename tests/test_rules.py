@@ -173,3 +173,29 @@ def test_python_built_spec_is_checked_by_check_spec():
     err = check_error(replace(spec, links=(bad,) + spec.links[1:]))
     assert err.place == "links[probe->station-view].noise"
     assert "expected a 2 x 2 matrix" in err.message
+
+
+@pytest.mark.parametrize("edit, key", [
+    ("station-view: {tracks: station, weight: 1.0}", "dim"),
+    ("station-view: {dim: 2, weight: 1.0}", "weight"),
+    ("station-view: {dim: 2, weight: 0, lag: 2}", "lag"),
+])
+def test_area_rules_refused_alike(edit, key):
+    area_line = "station-view: {tracks: station, weight: 1.0}"
+    text = TWO_LEVEL.replace(area_line, edit if key != "dim" else "station-view: {tracks: station, dim: 1}")
+    read = parse_error(text)
+    assert read.place == f"areas.station-view.{key}"
+    spec = two_level()
+    changes = {"dim": dict(dim=1), "weight": dict(tracks=()), "lag": dict(tracks=(), weight=0.0, lag=2)}[key]
+    area = replace(spec.areas[0], **changes)
+    built = check_error(replace(spec, areas=(area,) + spec.areas[1:]))
+    same_rule(read, built)
+    assert built.place == f"areas[station-view].{key}"
+
+
+def test_unknown_reference_in_a_python_built_spec_is_named():
+    spec = two_level()
+    link = replace(spec.links[0], source="prob")
+    err = check_error(replace(spec, links=(link,) + spec.links[1:]))
+    assert err.message == "there is no sensor or area called `prob`"
+    assert "did you mean `probe`?" in err.fix
