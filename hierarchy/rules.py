@@ -21,7 +21,7 @@ import math
 import numpy as np
 
 from .errors import InputError, SpecError
-from .model import PREDICTION, Link, Spec, World
+from .model import LINK_KINDS, PREDICTION, RESIDUAL, Link, Spec, World
 
 __all__ = [
     "STABLE_RADIUS",
@@ -42,6 +42,7 @@ __all__ = [
     "check_world",
     "check_area",
     "check_lag_depth",
+    "check_link_ends",
     "check_costs",
     "check_spec",
 ]
@@ -261,6 +262,21 @@ def check_lag_depth(world_dim: int, lag: int, place, line=None, error=SpecError)
                 place, line, error)
 
 
+def check_link_ends(source: str, target: str, kind: str, sensor_names, where, error=SpecError) -> None:
+    """A link joins two different nodes; predictions start at areas and
+    residuals end at areas. ``where(key) -> (place, line)`` names ``from``
+    and ``to``."""
+    if source == target:
+        _refuse("a link cannot go from a node to itself",
+                "an area's own memory is its gain M; remove this link", *where("to"), error)
+    if kind == PREDICTION and source in sensor_names:
+        _refuse(f"a prediction link starts at an area, and `{source}` is a sensor",
+                "a signal going up from a sensor is a residual: write `kind: residual`", *where("from"), error)
+    if kind == RESIDUAL and target in sensor_names:
+        _refuse(f"a residual link ends at an area, and `{target}` is a sensor",
+                "a signal going down to a sensor is a prediction: write `kind: prediction`", *where("to"), error)
+
+
 def _link_place(link, key):
     return (f"links[{link.id}].{key}" if key else f"links[{link.id}]"), None
 
@@ -299,6 +315,34 @@ def check_costs(links, budgets, where=_link_place, error=SpecError) -> None:
             _refuse("this link is noisy but has no price and is in no budget: sending louder is then always "
                     "better and free, so no optimum exists",
                     "give it a price (e.g. `price: 0.1`) or put it in a budget", *where(link, ""), error)
+
+
+def _check_link_pins(link, ids, dims, sensor_names, place, error) -> None:
+    """The pinned gains of a link built in Python: the kind's own gains, in
+    their shapes (the reader checks the same while it expands them)."""
+    own = ("G", "K") if link.kind == PREDICTION else ("S", "P", "K")
+    src, dst, dim = link.source, link.target, link.dim
+    pair = ids.get(f"{dst}->{src}")
+    for gain, matrix in link.pin.items():
+        if gain not in own:
+            _refuse(f"a {link.kind} link has no gain {gain}",
+                    f"a {link.kind} link pins only {', '.join(own)}; remove {gain} or change the kind",
+                    place(gain), None, error)
+        if gain == "K":
+            if dst in sensor_names:
+                _refuse(f"a prediction into sensor `{dst}` has no receiving gain K: a sensor keeps no state",
+                        "remove K", place(gain), None, error)
+            shape = (dims[dst], dim, f"rows: `{dst}` has size {dims[dst]}; columns: the link's dim {dim}")
+        elif gain == "P":
+            if pair is None or pair.kind != PREDICTION:
+                _refuse(f"there is no prediction link {dst}->{src} for this residual to subtract, so it has "
+                        f"no gain P", f"remove P, or add the prediction link {dst}->{src}", place(gain), None,
+                        error)
+            shape = (dim, pair.dim, f"rows: the link's dim {dim}; columns: the dim of {pair.id}, {pair.dim}")
+        else:
+            shape = (dim, dims[src], f"rows: the link's dim {dim}; columns: `{src}` has size {dims[src]}")
+        check_shape(matrix, *shape, place(gain), None, error)
+        _check_entries(matrix, place(gain), error)
 
 
 def check_spec(spec: Spec, place=None, error=SpecError) -> Spec:
@@ -367,9 +411,24 @@ def check_spec(spec: Spec, place=None, error=SpecError) -> Spec:
     if spec.areas:
         deepest = max(spec.areas, key=lambda a: a.lag)
         check_lag_depth(world.dim, deepest.lag, at(f"areas[{deepest.name}].lag"), None, error)
+    sensor_names = {s.name for s in spec.sensors}
+    dims = {s.name: s.dim for s in spec.sensors} | {a.name: a.dim for a in spec.areas}
+    ids = {link.id: link for link in spec.links}
     for link in spec.links:
+        if link.kind not in LINK_KINDS:
+            got = f"the text '{link.kind}'" if isinstance(link.kind, str) else repr(link.kind)
+            _refuse(f"expected one of {', '.join(LINK_KINDS)}, got {got}",
+                    suggest(link.kind, LINK_KINDS), at(f"links[{link.id}].kind"), None, error)
         for end in (link.source, link.target):
             check_known(end, nodes, "sensor or area", at(f"links[{link.id}]"), None, error)
+        check_link_ends(link.source, link.target, link.kind, sensor_names,
+                        lambda key, link=link: (at(f"links[{link.id}].{key}"), None), error)
+        _check_link_pins(link, ids, dims, sensor_names, lambda gain, link=link: at(f"links[{link.id}].pin.{gain}"),
+                         error)
+    for a in spec.areas:
+        if "M" in a.pin:
+            check_shape(a.pin["M"], a.dim, a.dim, f"area `{a.name}` has size {a.dim}", at(f"areas[{a.name}].pin.M"),
+                        None, error)
     link_ids = [link.id for link in spec.links]
     for b in spec.budgets:
         for link_id in b.links:

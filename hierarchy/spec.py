@@ -1165,19 +1165,8 @@ def _link_draft(at: _At, node_dims: dict, sensor_names: set) -> _LinkDraft:
     source, target, kind = f.get("from"), f.get("to"), f.get("kind")
     _known(f.pos("from"), source, node_dims, "sensor or area")
     _known(f.pos("to"), target, node_dims, "sensor or area")
-    if source == target:
-        f.pos("to").fail("a link cannot go from a node to itself",
-                         fix="an area's own memory is its gain M; remove "
-                             "this link")
-    if kind == PREDICTION and source in sensor_names:
-        f.pos("from").fail(f"a prediction link starts at an area, and "
-                           f"`{source}` is a sensor",
-                           fix="a signal going up from a sensor is a "
-                               "residual: write `kind: residual`")
-    if kind == RESIDUAL and target in sensor_names:
-        f.pos("to").fail(f"a residual link ends at an area, and `{target}` is "
-                         f"a sensor", fix="a signal going down to a sensor is a "
-                                          "prediction: write `kind: prediction`")
+    rules.check_link_ends(source, target, kind, sensor_names,
+                          lambda key: (f.pos(key).place, f.pos(key).line))
     default_dim = node_dims[target] if kind == PREDICTION else node_dims[source]
     dim = f.get("dim") if f.given("dim") else default_dim
     return _LinkDraft(f, source, target, kind, dim)

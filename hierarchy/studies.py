@@ -38,7 +38,7 @@ identity (a vector link's off-diagonal terms are dropped). Every modified
 spec is checked by :func:`hierarchy.rules.check_spec`, the rules the spec
 reader applies (a priced or budgeted link needs positive definite noise, a
 noisy link needs a price or a budget, the world must stay stable within the
-margin), and a relay has no weight, before any point
+margin, a relay has no weight) before any point
 is designed, and a bad path or value is an :class:`~hierarchy.errors.InputError`
 that names it.
 
@@ -315,11 +315,7 @@ def _set_one(spec: Spec, p: ValuePath, v: float) -> Spec:
         out = replace(spec, links=links)
     elif p.section == "budgets":
         out = replace(spec, budgets=tuple(replace(b, total=v) if b.name == p.name else b for b in spec.budgets))
-    elif p.section == "areas":
-        area = spec.area(p.name)
-        if p.field == "weight" and v > 0 and not area.has_target:
-            raise InputError(f"area `{p.name}` tracks nothing, so it has no error to weigh", place=str(p),
-                             fix="vary the weight of an area that tracks something")
+    elif p.section == "areas":  # a relay's weight is refused by rules.check_area
         out = replace(spec, areas=tuple(replace(a, **{p.field: v}) if a.name == p.name else a
                                         for a in spec.areas))
     elif p.section == "sensors":

@@ -199,3 +199,37 @@ def test_unknown_reference_in_a_python_built_spec_is_named():
     err = check_error(replace(spec, links=(link,) + spec.links[1:]))
     assert err.message == "there is no sensor or area called `prob`"
     assert "did you mean `probe`?" in err.fix
+
+
+def test_a_relay_weight_is_refused_alike_by_reader_and_sweep():
+    relay = "station-view: {tracks: station, weight: 1.0}\n  relay: {dim: 1"
+    spec = parse_spec(TWO_LEVEL.replace("station-view: {tracks: station, weight: 1.0}", relay + "}"))
+    read = parse_error(TWO_LEVEL.replace("station-view: {tracks: station, weight: 1.0}", relay + ", weight: 0.5}"))
+    swept = set_error(spec, "areas[relay].weight", 0.5)
+    same_rule(read, swept)
+    assert swept.place == "areas[relay].weight = 0.5 (areas[relay].weight)"
+    assert studies.set_value(spec, "areas[*].weight", 0.5).area("relay").weight == 0  # a group leaves relays out
+
+
+@pytest.mark.parametrize("edit, key", [
+    ("{from: probe, to: probe, kind: residual, noise: 0.02, price: 0.05}", "to"),
+    ("{from: probe, to: station-view, kind: prediction, noise: 0.02, price: 0.05}", "from"),
+])
+def test_link_end_rules_refused_alike(edit, key):
+    first = "{from: probe, to: station-view, kind: residual, noise: 0.02, price: 0.05}"
+    read = parse_error(TWO_LEVEL.replace(first, edit))
+    assert read.place == f"links[0] ({'probe->probe' if key == 'to' else 'probe->station-view'}).{key}"
+    spec = two_level()
+    link = replace(spec.links[0], target="probe") if key == "to" else replace(spec.links[0], kind="prediction")
+    built = check_error(replace(spec, links=(link,) + spec.links[1:]))
+    same_rule(read, built)
+
+
+def test_pinned_gain_shape_refused_alike():
+    first = "{from: probe, to: station-view, kind: residual, noise: 0.02, price: 0.05}"
+    read = parse_error(TWO_LEVEL.replace(first, first[:-1] + ", pin: {S: [[1, 0]]}}"))
+    spec = two_level()
+    link = replace(spec.links[0], pin={"S": frozen_array([[1.0, 0.0]])})
+    built = check_error(replace(spec, links=(link,) + spec.links[1:]))
+    same_rule(read, built)
+    assert built.place == "links[probe->station-view].pin.S"
