@@ -52,6 +52,8 @@ MAX_NODES = 1_000_000
 #: Limit on the world's total size, on the sum of sensor, area and link sizes.
 MAX_TOTAL_DIM = 5000
 MAX_LAG = 50
+#: Longest conduction delay of a link, in steps.
+MAX_DELAY = 50
 #: Highest drawing level an area may be given (more than any real hierarchy).
 MAX_LEVEL = 1000
 #: A world (and a closed loop, see hierarchy.evaluate) is stable when its
@@ -897,6 +899,10 @@ _LINK_KEYS = (
     _Key("noise", _Matrix(), "channel-noise covariance (dim x dim)",
          default="zero"),
     _Key("price", _Real(0.0), "price per unit of power sent", default=0),
+    _Key("delay", _Int(1, MAX_DELAY),
+         "conduction delay in whole steps: the receiver uses at t+1 what was "
+         "sent at t - delay + 1 (1: the next step, as every link without it)",
+         default=1),
     _Key("pin", _Table(_LINK_PIN_KEYS),
          "gains fixed by hand: G and K on a prediction; S, P and K on a "
          "residual"),
@@ -1273,7 +1279,22 @@ def _link(draft: _LinkDraft, drafts_by_id: dict, node_dims: dict,
     pin = _link_pins(draft, drafts_by_id, node_dims, sensor_names)
     return Link(source=draft.source, target=draft.target, kind=draft.kind,
                 dim=draft.dim, noise=frozen_array(noise), price=f.get("price"),
-                pin=frozen_map(pin))
+                pin=frozen_map(pin), delay=f.get("delay"))
+
+
+def _check_delay_states(drafts: list, links: tuple) -> None:
+    """A link of delay k keeps k - 1 copies of its signal in the closed
+    loop; refuse delays whose copies together pass the size limit."""
+    total = 0
+    for draft, link in zip(drafts, links):
+        total += (link.delay - 1) * link.dim
+        if total > MAX_TOTAL_DIM:
+            draft.fields.pos("delay").fail(
+                f"too large: the links' delays keep {total} delayed signal "
+                f"numbers in the closed loop so far (each link of delay k "
+                f"keeps k - 1 copies of its signal); the limit is "
+                f"{MAX_TOTAL_DIM}",
+                fix="use shorter delays or narrower links")
 
 
 def _link_pins(draft, drafts_by_id, node_dims, sensor_names) -> dict:
@@ -1469,6 +1490,7 @@ def _parse_document(root: _At, path) -> Spec:
     drafts_by_id = {d.id: d for d in drafts}
     links = tuple(_link(d, drafts_by_id, node_dims, sensor_names)
                   for d in drafts)
+    _check_delay_states(drafts, links)
     budgets = _parse_budgets(top.get("budgets"), links, node_dims)
     _check_costs(drafts, links, budgets)
     default_name = Path(path).stem if path else "unnamed"

@@ -967,7 +967,7 @@ def test_schema_lists_every_key_the_parser_knows():
     assert list(props) == ["spec", "name", "world", "sensors", "areas",
                            "links", "budgets"]
     link = props["links"]["items"]["properties"]
-    assert list(link) == ["from", "to", "kind", "dim", "noise", "price", "pin"]
+    assert list(link) == ["from", "to", "kind", "dim", "noise", "price", "delay", "pin"]
     assert link["noise"]["default"] == "zero"
 
 
