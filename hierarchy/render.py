@@ -168,6 +168,10 @@ def _check_result(data, place) -> None:
             raise InputError(f"link '{lid}' has no finite power", place=f"{place}: links.{lid}.power", fix=fix)
         for key in ("snr", "bits"):
             _optional_number(row.get(key), f"{place}: links.{lid}.{key}", fix)
+        delay = row.get("delay", 1)
+        if not isinstance(delay, int) or isinstance(delay, bool) or delay < 1:
+            raise InputError(f"link '{lid}' has a delay that is not a whole number of steps (1 or more)",
+                             place=f"{place}: links.{lid}.delay", fix=fix)
         if not isinstance(row.get("share_of_budget") or {}, dict):
             raise InputError("the shares of budget are not an object", place=f"{place}: links.{lid}", fix=fix)
         for b, share in (row.get("share_of_budget") or {}).items():
@@ -268,12 +272,19 @@ def _num(x, digits=3) -> str:
 
 
 def _link_label(row, width_by) -> str:
-    lines = [f"P {_num(row['power'])}  SNR {_num(row.get('snr'))}", f"{_num(row.get('bits'))} bit/step"]
+    lines = [f"P {_num(row['power'])}  SNR {_num(row.get('snr'))}",
+             f"{_num(row.get('bits'))} bit/step" + _delay_text(row)]
     if width_by == "share":
         shares = row.get("share_of_budget") or {}
         lines += [", ".join(f"{100 * s:.0f}% of {b}" for b, s in shares.items() if s is not None)
                   or "in no budget"]
     return "\n".join(lines)
+
+
+def _delay_text(row) -> str:
+    """``, delay 3`` for a link that takes 3 steps; nothing for one step."""
+    delay = row.get("delay") or 1
+    return f", delay {delay}" if delay > 1 else ""
 
 
 def _node_label(name, role, area) -> str:
@@ -529,7 +540,8 @@ def _side_table(fig, rect, data, lids, font):
     lines = [f"{'link':<{name}}  {'P':>8}  {'SNR':>8}  bit/step"]
     for lid in shown:
         row = data["links"][lid]
-        lines.append(f"{lid:<{name}}  {_num(row['power']):>8}  {_num(row.get('snr')):>8}  {_num(row.get('bits'))}")
+        lines.append(f"{lid:<{name}}  {_num(row['power']):>8}  {_num(row.get('snr')):>8}  {_num(row.get('bits'))}"
+                     + _delay_text(row))
     if len(shown) < len(lids):
         lines.append(f"... and {len(lids) - len(shown)} more (see the result's tables)")
     ax.text(0, 1, "links not labelled on the drawing\n" + "\n".join(lines), transform=ax.transAxes, ha="left",

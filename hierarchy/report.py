@@ -165,12 +165,15 @@ def report_html(data, spec=None) -> str:
 
     budgets = data.get("budgets") or {}
     in_budget = {lid: b for b, row in budgets.items() for lid in row.get("links", [])}
-    link_cols = ["link", "kind", "power", "SNR", "bits/step", "price", "budget share", "through gain", "note"]
+    delays = any((row.get("delay") or 1) > 1 for row in data["links"].values())
+    link_cols = ["link", "kind"] + (["delay"] if delays else []) + [
+        "power", "SNR", "bits/step", "price", "budget share", "through gain", "note"]
     rows, classes = [], []
     for lid, row in sorted(data["links"].items(), key=lambda kv: -float(kv[1]["power"])):
         shares = row.get("share_of_budget") or {}
         price = _num(row.get("price")) if row.get("price") or lid not in in_budget else f"budget {in_budget[lid]}"
-        rows.append([lid, row["kind"], _num(row["power"]), _num(row.get("snr")), _num(row.get("bits")), price,
+        rows.append([lid, row["kind"]] + ([row.get("delay") or 1] if delays else []) + [
+                     _num(row["power"]), _num(row.get("snr")), _num(row.get("bits")), price,
                      " ".join(f"{b}:{100 * s:.1f}%" for b, s in shares.items() if s is not None) or "-",
                      _num(row.get("through_gain"), 3), "silent" if row.get("silent") else ""])
         classes.append("silent" if row.get("silent") else ("prediction" if row["kind"] == PREDICTION

@@ -81,6 +81,7 @@ def scores_to_dict(spec, scores, gains=None) -> dict:
         link = spec.link(lid)
         # model.md: a link's power is pinned down only when it is priced or budgeted.
         row["identifiable"] = bool(link.price > 0 or lid in budgeted)
+        row["delay"] = link.delay
         if gains is not None:
             row["through_gain"] = through_gain(spec, gains, link)
     for name, row in d["areas"].items():
@@ -183,12 +184,13 @@ def scores_text(spec, scores, gains=None, result=None) -> str:
                           fmt(s.error), fmt(s.relative), fmt(s.activity)])
     out.append(table(["area", "tracks", "lag", "error", "err/prior", "activity"], area_rows))
     link_rows = []
+    delays = any(l.delay > 1 for l in spec.links)  # the column only where some link has one
     for l in spec.links:
         s = scores.links[l.id]
         in_budgets = [b.name for b in spec.budgets if l.id in b.links]
         # A budgeted link pays through its budget, not a price: say which.
         price = fmt(s.price) if s.price or not in_budgets else "budget " + ",".join(in_budgets)
-        row = [l.id, l.kind, fmt(s.power), fmt(s.snr), fmt(s.bits), price]
+        row = [l.id, l.kind] + ([l.delay] if delays else []) + [fmt(s.power), fmt(s.snr), fmt(s.bits), price]
         if result is not None:
             shares = [f"{b.name}:{100 * s.power / b.total:.1f}%" for b in result.budgets.values()
                       if l.id in b.links and b.total > 0]
@@ -196,7 +198,7 @@ def scores_text(spec, scores, gains=None, result=None) -> str:
             row.append(fmt(through_gain(spec, gains, l), 3))
             row.append("silent" if l.id in result.silent else "")
         link_rows.append(row)
-    header = ["link", "kind", "power", "SNR", "bits/step", "price"]
+    header = ["link", "kind"] + (["delay"] if delays else []) + ["power", "SNR", "bits/step", "price"]
     if result is not None:
         header += ["budget share", "through gain", "note"]
     out.append(table(header, link_rows))
@@ -274,6 +276,8 @@ EXPLANATIONS = (
     ("areas", "activity", "E||z||^2, the mean squared size of the area's whole state"),
     ("links", "link", "the link's id, FROM->TO"),
     ("links", "kind", "prediction (top-down, sends G z) or residual (bottom-up, sends S u - P p~)"),
+    ("links", "delay", "the link's conduction delay in steps: its receiver uses at t+1 what was sent at "
+                       "t - delay + 1 (shown only when some link has a delay above 1)"),
     ("links", "power", "E||s||^2, the mean squared size of what the link sends per step, before its channel adds "
                        "noise (model units squared); this is what prices and budgets charge for"),
     ("links", "SNR", "power divided by the channel's noise power: how loud the link is above its noise"),

@@ -244,3 +244,43 @@ def test_sub_circuit_keeps_delays():
     assert {l.id: l.delay for l in sub.links} == {"y->low": 2, "low->high": 1}
     assert dataclasses.replace(spec.links[0], price=1.0).delay == 2
     assert math.isfinite(evaluate(sub, random_gains(sub)).objective)
+
+
+# --- what users see -----------------------------------------------------------
+
+def test_delay_in_json_text_report_and_drawing():
+    from hierarchy.render import draw_circuit
+    from hierarchy.report import report_html
+    from hierarchy.results import scores_text, scores_to_dict
+
+    spec = parse_spec(TWO_LEVEL.format(2, 1, 1, 3))
+    g = random_gains(spec)
+    scores = evaluate(spec, g)
+    data = scores_to_dict(spec, scores, g)
+    assert {lid: row["delay"] for lid, row in data["links"].items()} == {
+        "y->low": 2, "low->y": 1, "low->high": 1, "high->low": 3}
+    text = scores_text(spec, scores, g)
+    assert "delay" in text.splitlines()[text.splitlines().index(next(l for l in text.splitlines()
+                                                                     if l.startswith("link ")))]
+    undelayed = parse_spec(TWO_LEVEL.format(1, 1, 1, 1))
+    assert " delay " not in scores_text(undelayed, evaluate(undelayed, g), g)
+    data.update({"form": "price", "status": "converged"})
+    assert "<th>delay</th>" in report_html(data)
+    fig = draw_circuit(data)
+    labels = {lid: t.get_text() for lid, t in fig.hierarchy_labels.items()}
+    assert {"y->low", "high->low"} <= set(labels)
+    for lid, text in labels.items():
+        assert ("delay 3" in text) == (lid == "high->low") and ("delay 2" in text) == (lid == "y->low")
+
+
+def test_a_bad_delay_in_a_result_file_is_refused():
+    from hierarchy.errors import InputError
+    from hierarchy.render import draw_circuit
+    from hierarchy.results import scores_to_dict
+
+    spec = parse_spec(TWO_LEVEL.format(2, 1, 1, 3))
+    data = scores_to_dict(spec, evaluate(spec, random_gains(spec)))
+    data["links"]["y->low"]["delay"] = "two"
+    with pytest.raises(InputError) as err:
+        draw_circuit(data)
+    assert "links.y->low.delay" in err.value.place
