@@ -84,11 +84,45 @@ def scores_to_dict(spec, scores, gains=None) -> dict:
         row["delay"] = link.delay
         if gains is not None:
             row["through_gain"] = through_gain(spec, gains, link)
+    if spec.units is not None:
+        _add_physical(d, spec.units)
     for name, row in d["areas"].items():
         row["relay"] = not spec.area(name).has_target
         # Where drawings place the area (spec `level:` or the default rule).
         row["level"] = level.get(name)
     return _clean(d)
+
+
+def _add_physical(d: dict, units) -> None:
+    """Physical rates beside the model's numbers: per link under
+    ``physical`` and their sums under ``physical_total`` (docs/spec.md, units)."""
+    from .units import describe, physical
+
+    d["units"] = {**units.to_dict(), "assumes": describe(units)}
+    total = {"bits_per_second": 0.0, "events_per_second": 0.0, "watts": 0.0}
+    for row in d["links"].values():
+        row["physical"] = physical(units, row["power"], row["bits"])
+        for key in total:
+            total[key] += row["physical"][key]
+    d["physical_total"] = total
+
+
+def physical_text(spec, scores) -> str:
+    """The physical-units table of a spec with a ``units:`` section."""
+    from .units import describe, physical
+
+    u = spec.units
+    rows = []
+    total = [0.0, 0.0, 0.0]
+    for l in spec.links:
+        s = scores.links[l.id]
+        r = physical(u, s.power, s.bits)
+        vals = [r["bits_per_second"], r["events_per_second"], r["watts"]]
+        total = [t + v for t, v in zip(total, vals)]
+        rows.append([l.id, fmt(s.power), fmt(s.bits)] + [fmt(v) for v in vals])
+    rows.append(["all links", "", ""] + [fmt(v) for v in total])
+    return (table(["link", "power", "bits/step", "bits/s", f"{u.event}/s", "energy (W)"], rows)
+            + f"\nphysical units: {describe(u)}")
 
 
 def result_to_dict(result) -> dict:
@@ -202,6 +236,8 @@ def scores_text(spec, scores, gains=None, result=None) -> str:
     if result is not None:
         header += ["budget share", "through gain", "note"]
     out.append(table(header, link_rows))
+    if spec.units is not None:
+        out.append(physical_text(spec, scores))
     if spec.budgets and result is None:
         rows = []
         for b in spec.budgets:
@@ -291,6 +327,11 @@ EXPLANATIONS = (
                               "sent louder and received softer with nothing changed)"),
     ("links", "note", "'silent' when the link sends nothing at this design; below the tables, whether it was "
                       "checked not worth sending or left untested, and why (docs/search.md says what each promises)"),
+    ("physical", "bits/s", "the link's bits per step divided by the step's duration (spec `units: step`)"),
+    ("physical", "EVENT/s", "events per second (spikes, bits, ...): bits/s divided by the bits one event carries "
+                            "(map bits), or power divided by the power of one event per step (map power)"),
+    ("physical", "energy (W)", "joules per second: events per second times the energy of one event; the presets' "
+                               "numbers and their sources are in hierarchy/units.py and docs/spec.md"),
     ("budgets", "budget", "the budget group's name"),
     ("budgets", "total", "the most power the group's links may send together"),
     ("budgets", "used", "the power they send at this design"),

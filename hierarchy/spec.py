@@ -26,6 +26,7 @@ import numpy as np
 import yaml
 
 from hierarchy.errors import SpecError
+from hierarchy.units import MAPS, PRESETS, RADIO_DISTANCE, Units, radio_energy_per_bit
 from hierarchy.io import atomic_write_text
 from hierarchy.model import (
     LINK_KINDS,
@@ -923,6 +924,31 @@ _BUDGET_KEYS = (
          required=True, fix="add `total: ...`"),
 )
 
+_UNITS_KEYS = (
+    _Key("step", _Real(0.0), "seconds one step lasts", required=True,
+         fix="add `step: 0.01` (seconds per step)"),
+    _Key("preset", _Choice(tuple(PRESETS)),
+         "documented numbers to start from: " + ", ".join(PRESETS)
+         + " (hierarchy/units.py names their sources)"),
+    _Key("map", _Choice(MAPS),
+         "how a link's signal becomes events: bits (its Gaussian channel "
+         "capacity per step) or power (E||s||^2, a linear map)",
+         default="bits"),
+    _Key("event", _Text(),
+         "what one event is, for reports (spike, bit, packet); default: the "
+         "preset's, else `event`"),
+    _Key("bits_per_event", _Real(0.0),
+         "bits one event carries (map bits); default: the preset's, else 1"),
+    _Key("power_per_event", _Real(0.0),
+         "model power that makes one event per step (map power, required "
+         "there)"),
+    _Key("energy_per_event", _Real(0.0),
+         "joules per event; default: the preset's (required without one)"),
+    _Key("distance", _Real(0.0),
+         f"metres between a radio link's ends (preset radio only); default "
+         f"{RADIO_DISTANCE:g}"),
+)
+
 _TOP_KEYS = (
     _Key("spec", _Version(), "format version of this file", required=True,
          fix=f"add `spec: {SPEC_VERSION}` as the first line"),
@@ -943,6 +969,9 @@ _TOP_KEYS = (
     _Key("budgets", _ListOf(_Table(_BUDGET_KEYS),
                             "{name: N, links: all, total: 1.0}"),
          "hard limits on the total power of groups of links", default=[]),
+    _Key("units", _Table(_UNITS_KEYS),
+         "physical units for reports: seconds per step and the energy of a "
+         "link's signal; changes no computed number"),
 )
 
 
@@ -1282,6 +1311,64 @@ def _link(draft: _LinkDraft, drafts_by_id: dict, node_dims: dict,
                 pin=frozen_map(pin), delay=f.get("delay"))
 
 
+def _parse_units(f: _Fields | None) -> Units | None:
+    """The ``units:`` section: a preset's numbers, overridden by what the
+    section states; every event count needs a positive size."""
+    if f is None:
+        return None
+    step = f.get("step")
+    if not step > 0:
+        f.pos("step").fail("a step must last some time, got 0",
+                           fix="give the step's duration in seconds, e.g. `step: 0.01`")
+    preset = PRESETS.get(f.get("preset")) if f.given("preset") else None
+    kind = f.get("map")
+    wrong = "power_per_event" if kind == "bits" else "bits_per_event"
+    if f.given(wrong):
+        f.pos(wrong).fail(f"`{wrong}` does not apply to `map: {kind}`",
+                          fix=f"remove `{wrong}`, or write `map: "
+                              f"{'power' if kind == 'bits' else 'bits'}`")
+    if f.given("distance") and (preset is None or preset.name != "radio"):
+        f.pos("distance").fail("a distance applies only to the radio preset",
+                               fix="remove `distance`, or write `preset: radio`")
+    if kind == "bits":
+        if f.given("bits_per_event"):
+            per_event = f.get("bits_per_event")
+        else:
+            per_event = preset.bits_per_event if preset else 1.0
+        size = "bits_per_event"
+    else:
+        if not f.given("power_per_event"):
+            f.pos("power_per_event").fail(
+                "`map: power` needs the model power that makes one event per step",
+                fix="add `power_per_event: ...` (model units of power)")
+        per_event, size = f.get("power_per_event"), "power_per_event"
+    if not per_event > 0:
+        f.pos(size).fail(f"`{size}` must be above 0, got 0",
+                         fix=f"give how much one event is worth, e.g. `{size}: 1`")
+    distance = None
+    if f.given("energy_per_event"):
+        if f.given("distance"):
+            f.pos("distance").fail(
+                "the distance sets the radio's energy per bit, and "
+                "`energy_per_event` gives it too",
+                fix="keep one of `distance` and `energy_per_event`")
+        energy = f.get("energy_per_event")
+    elif preset is None:
+        f.pos("energy_per_event").fail(
+            "without a preset the energy of one event must be given",
+            fix="add `energy_per_event: ...` (joules), or `preset: "
+                + " | ".join(PRESETS) + "`")
+    elif preset.energy_per_event is None:  # radio: from the distance
+        distance = f.get("distance") if f.given("distance") else RADIO_DISTANCE
+        energy = radio_energy_per_bit(distance)
+    else:
+        energy = preset.energy_per_event
+    event = f.get("event") if f.given("event") else (preset.event if preset else "event")
+    return Units(step=step, map=kind, event=event.strip(), per_event=per_event,
+                 energy_per_event=energy, preset=preset.name if preset else None,
+                 distance=distance, sources=preset.sources if preset else ())
+
+
 def _check_delay_states(drafts: list, links: tuple) -> None:
     """A link of delay k keeps k - 1 copies of its signal in the closed
     loop; refuse delays whose copies together pass the size limit."""
@@ -1499,7 +1586,8 @@ def _parse_document(root: _At, path) -> Spec:
                 version=SPEC_VERSION,
                 warnings=_warnings(drafts, links, sensor_names)
                 + _flat_list_warnings(top.get("sensors")),
-                path=str(path) if path is not None else None)
+                path=str(path) if path is not None else None,
+                units=_parse_units(top.get("units")))
 
 
 # --------------------------------------------------------------------------
