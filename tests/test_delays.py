@@ -284,3 +284,23 @@ def test_a_bad_delay_in_a_result_file_is_refused():
     with pytest.raises(InputError) as err:
         draw_circuit(data)
     assert "links.y->low.delay" in err.value.place
+
+
+def test_gallery_caption_on_depth_under_delays_holds():
+    # gallery/README.md says: under these delays the shallow circuit wins at
+    # small budgets and the deep one at large budgets. Read it off the
+    # committed numbers (tests/test_gallery.py checks them against a fresh run).
+    import json
+    from pathlib import Path
+
+    data = json.loads((Path(__file__).resolve().parents[1] / "gallery/compare-delays.json").read_text())
+    best = {}
+    for row in data["rows"]:
+        assert row["converged"]
+        best.setdefault(row["budget"], {})[row["spec"]] = row["objective"]
+    budgets = sorted(best)
+    winner = [min(best[b], key=best[b].get) for b in budgets]
+    assert winner[0] == "shallow-delays" and winner[-1] == "deep-delays"
+    # One crossing: once the deep circuit wins, it keeps winning.
+    first_deep = winner.index("deep-delays")
+    assert all(w == "deep-delays" for w in winner[first_deep:])
