@@ -1,7 +1,9 @@
 """Closed-loop matrices of a circuit for a given set of gains.
 
-Stack the state ``xi = [x(t), x(t-1), ..., x(t-L); z_1; ...; z_A]`` (the world
-augmented with delayed copies for lagged targets, then every area) and all
+Stack the state ``xi = [x(t), x(t-1), ..., x(t-L); z_1; ...; z_A; c]`` (the
+world augmented with delayed copies for lagged targets, every area, then the
+signals in flight on delayed links: a link of delay ``k`` keeps ``k - 1``
+copies of its channel output, and its receiver reads the oldest) and all
 noises ``nu = [w; v_sensors...; eta_links...]`` with covariance ``Omega``. With
 ``q = [xi; nu]`` every quantity of one time step is linear in ``q``:
 
@@ -28,7 +30,11 @@ noises) and the node signals ``u = [y_sensors; z]``,
 then what arrives is ``R = (I - Pm)(Gs U + E)`` (``E`` picks the link
 noises; ``Pm`` maps prediction rows into residual rows only, so ``Pm^2 = 0``
 and ``(I + Pm)^-1 = I - Pm``), what is sent is ``R - E``, and the areas move
-on as ``z(t+1) = Mz z + Km R q``. Every piece is a sum of small blocks, so
+on as ``z(t+1) = Mz z + Km R q``. On a delayed link what arrives is a state
+(its oldest copy), so its ``K`` and a residual's ``P`` on a delayed
+prediction act on ``xi`` directly (``Kd``, ``Pd``); the copies' own rows are
+fixed entries (``Km`` feeds the first copy, shifts move the rest), and the
+"areas" block ``z`` of the compact form includes the copies. Every piece is a sum of small blocks, so
 the link count enters only through sparse products and index gathers, never
 through dense ``(nq x nq)`` matrices.
 """

@@ -304,3 +304,11 @@ def test_gallery_caption_on_depth_under_delays_holds():
     # One crossing: once the deep circuit wins, it keeps winning.
     first_deep = winner.index("deep-delays")
     assert all(w == "deep-delays" for w in winner[first_deep:])
+
+
+def test_resource_estimate_counts_the_copies():
+    from hierarchy.resources import estimate
+
+    spec = parse_spec(TWO_LEVEL.format(2, 3, 1, 3))
+    need = estimate(spec)
+    assert (need.nxi, need.nq) == (Layout(spec).nxi, Layout(spec).nq)
