@@ -483,6 +483,7 @@ class Structure:
         # The first copy of a delayed link takes what its channel puts out:
         # fixed entries 1 in Km, read from the slot just past the gains.
         self.one = layout.n_gains
+        self.delays = bool(layout.delayed)  # without any, every delay step below is skipped
         feed = [(ll.copies.start - nx + np.arange(ll.dim), rows[ll.id] + np.arange(ll.dim))
                 for ll in layout.delayed]
         K = Entries.of(km)
@@ -567,19 +568,22 @@ class Structure:
     def parts(self, g: np.ndarray) -> Parts:
         """The compact closed loop for the flat gain vector ``g``."""
         n, nx = self.n, self.nx
-        g = np.append(g, 1.0)  # slot `one`: the fixed entries of delayed links
+        if self.delays:
+            g = np.append(g, 1.0)  # slot `one`: the fixed entries of delayed links
         Gv = np.zeros((self.m, self.nv))
         Gv[self.Gv.rows, self.Gv.cols] = g[self.Gv.at]
         B = np.zeros((self.m, self.nxi))
         B[:, :n] = Gv @ self.C_all
         B[self.Gz.rows, nx + self.Gz.cols] = g[self.Gz.at]
-        B[self.Pd.rows, nx + self.Pd.cols] = -g[self.Pd.at]
+        if self.delays:
+            B[self.Pd.rows, nx + self.Pd.cols] = -g[self.Pd.at]
         p, k = g[self.P.at], g[self.K.at]
         H = B - self.Pm.matmul(p, B)
         Phi_z = self.Km.matmul(k, H)
         Phi_z[self.M.rows, nx + self.M.cols] += g[self.M.at]
-        Phi_z[self.Kd.rows, nx + self.Kd.cols] += g[self.Kd.at]
-        Phi_z[self.shift[0], nx + self.shift[1]] += 1.0
+        if self.delays:
+            Phi_z[self.Kd.rows, nx + self.Kd.cols] += g[self.Kd.at]
+            Phi_z[self.shift[0], nx + self.shift[1]] += 1.0
         Q2 = np.zeros((self.nz, self.m))
         Q2[self.K.rows, self.K.cols] = k
         Q2 -= self.PmT.matmul(p, Q2.T).T

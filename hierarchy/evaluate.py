@@ -605,9 +605,11 @@ def flat_cost_and_gradient(layout: Layout, g: np.ndarray, prices=None):
     Yv = 2.0 * Azz @ (p.Q1 @ st.Omega_v)
     Ye = 2.0 * Azz @ p.Q2_omega
 
-    dg = np.zeros(len(g) + 1)  # the last slot takes (and drops) the fixed entries' derivatives
+    # With delayed links, one more slot takes (and drops) the derivatives of their fixed entries.
+    dg = np.zeros(len(g) + st.delays)
     dg[st.M.at] = Yx[st.M.rows, nx + st.M.cols]
-    dg[st.Kd.at] = Yx[st.Kd.rows, nx + st.Kd.cols]
+    if st.delays:
+        dg[st.Kd.at] = Yx[st.Kd.rows, nx + st.Kd.cols]
     K = st.K
     if len(K.at):
         PY = st.Pm.matmul(p.p, Ye.T)  # (Ye Pm')': the -Pm part of what arrives, over link noises
@@ -624,7 +626,8 @@ def flat_cost_and_gradient(layout: Layout, g: np.ndarray, prices=None):
     gB = gR - st.PmT.matmul(p.p, gR)
     gBv = gRv - st.PmT.matmul(p.p, gRv)
     dg[st.Gz.at] = gB[st.Gz.rows, nx + st.Gz.cols]
-    dg[st.Pd.at] = -gB[st.Pd.rows, nx + st.Pd.cols]
+    if st.delays:
+        dg[st.Pd.at] = -gB[st.Pd.rows, nx + st.Pd.cols]
     Gv = st.Gv
     dg[Gv.at] = _row_dots(gB[:, :n], Gv.rows, st.C_all, Gv.cols) + gBv[Gv.rows, Gv.cols]
-    return J, dg[:-1], radius
+    return J, dg[:len(g)], radius
