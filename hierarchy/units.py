@@ -26,7 +26,7 @@ not checked against the publication while this was written):
     signalling budget of Attwell and Laughlin (2001), "An energy budget for
     signaling in the grey matter of the brain", J Cereb Blood Flow Metab
     21:1133-1145: 3.29e9 ATP per neuron per second at a mean rate of 4 Hz
-    (p. 1139), of which the resting potential takes 13% (abstract), so the
+    (p. 1139, as quoted by the BioNumbers database, entry 108672), of which the resting potential takes 13% (abstract), so the
     spiking part costs 3.29e9 x 0.87 / 4 = 7.2e8 ATP per spike. Two bits per
     spike, as measured in the fly's H1 neuron by Strong, Koberle, de Ruyter
     van Steveninck and Bialek (1998), "Entropy and information in neural
@@ -71,8 +71,9 @@ ATP_JOULES_PER_MOL = 57e3
 #: Joules per ATP molecule.
 JOULES_PER_ATP = ATP_JOULES_PER_MOL / AVOGADRO
 
-#: Attwell and Laughlin (2001), p. 1139: ATP used on signalling per neuron
-#: per second at a mean firing rate of :data:`AL2001_MEAN_RATE`.
+#: Attwell and Laughlin (2001), p. 1139 (as quoted by BioNumbers, entry
+#: 108672): ATP used on signalling per neuron per second at a mean firing
+#: rate of :data:`AL2001_MEAN_RATE`.
 AL2001_ATP_PER_NEURON_SECOND = 3.29e9
 #: The mean firing rate of that estimate (Hz).
 AL2001_MEAN_RATE = 4.0
