@@ -229,7 +229,9 @@ def describe(units: Units) -> str:
     1 step = 0.01 s; a link's bits per step (its Gaussian channel capacity) at 2 bit per spike, 6.8e-11 J per spike (preset neural)
     """
     if units.map == "bits":
-        how = f"a link's bits per step (its Gaussian channel capacity) at {units.per_event:g} bit per {units.event}"
+        how = "a link's bits per step (its Gaussian channel capacity)"
+        if not (units.event == "bit" and units.per_event == 1):
+            how += f" at {units.per_event:g} bit per {units.event}"
     else:
         how = f"a link's power (model units) at {units.per_event:g} per {units.event} per step"
     tail = f" (preset {units.preset}" + (f", {units.distance:g} m" if units.distance is not None else "") + ")" \
