@@ -13,7 +13,7 @@ baseline is what it was before delays existed. The state grows by
 ``(delay - 1) x dim`` per delayed link and the Lyapunov solves grow with its
 cube: give long delays to the few links that need them.
 
-    OPENBLAS_NUM_THREADS=1 python benchmarks/delay_cost.py [--quick]
+    OPENBLAS_NUM_THREADS=1 python benchmarks/delay_cost.py [--quick]   # about 1.5 minutes; --quick about 25 s
 """
 
 from __future__ import annotations
@@ -53,7 +53,7 @@ def main(argv=None) -> int:
     parser = argparse.ArgumentParser(description=__doc__.splitlines()[0])
     parser.add_argument("--quick", action="store_true", help="fewer repeats")
     args = parser.parse_args(argv)
-    number, repeat = (10, 3) if args.quick else (50, 5)
+    number, repeat = (10, 3) if args.quick else (20, 5)
     for line in blas_header():
         print(line)
     print(f"code: {code_version()}")
