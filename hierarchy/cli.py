@@ -131,10 +131,15 @@ def cmd_check(args) -> int:
             cost.append(f"price {l.price:g}")
         if l.id in budgeted:
             cost.append(f"budget {budgeted[l.id]}")
+        delay = f", delay {l.delay} steps" if l.delay > 1 else ""
         print(f"link {l.id}: {l.kind}, {l.dim}-dim, noise power {l.noise.trace():.4g}"
-              + (", " + ", ".join(cost) if cost else "") + pins)
+              + (", " + ", ".join(cost) if cost else "") + delay + pins)
     for b in spec.budgets:
         print(f"budget {b.name}: total {b.total:g} over {len(b.links)} link(s)")
+    if spec.units is not None:
+        from .units import describe
+
+        print(f"units: {describe(spec.units)}")
     _print_warnings(c)
     return 0
 

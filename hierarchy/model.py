@@ -143,6 +143,8 @@ class Link:
     ``kind`` is ``"prediction"`` or ``"residual"``; ``dim`` the size of the
     signal sent; ``noise`` its channel-noise covariance (dim x dim); ``pin``
     may hold ``G``, ``K`` (prediction) or ``S``, ``P``, ``K`` (residual).
+    ``delay`` is the conduction delay in whole steps (1 or more): the
+    receiver's update of ``t+1`` uses what was sent at ``t - delay + 1``.
     """
 
     source: str
@@ -152,6 +154,7 @@ class Link:
     noise: np.ndarray
     price: float = 0.0
     pin: Mapping[str, np.ndarray] = field(default_factory=dict)
+    delay: int = 1
 
     @property
     def id(self) -> str:
@@ -181,6 +184,7 @@ class Spec:
     version: int = 1
     warnings: tuple = ()
     path: str | None = None
+    units: object = None  # hierarchy.units.Units, or None: the model's own units only
 
     def sensor(self, name):
         return next(s for s in self.sensors if s.name == name)

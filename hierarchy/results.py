@@ -81,13 +81,48 @@ def scores_to_dict(spec, scores, gains=None) -> dict:
         link = spec.link(lid)
         # model.md: a link's power is pinned down only when it is priced or budgeted.
         row["identifiable"] = bool(link.price > 0 or lid in budgeted)
+        row["delay"] = link.delay
         if gains is not None:
             row["through_gain"] = through_gain(spec, gains, link)
+    if spec.units is not None:
+        _add_physical(d, spec.units)
     for name, row in d["areas"].items():
         row["relay"] = not spec.area(name).has_target
         # Where drawings place the area (spec `level:` or the default rule).
         row["level"] = level.get(name)
     return _clean(d)
+
+
+def _add_physical(d: dict, units) -> None:
+    """Physical rates beside the model's numbers: per link under
+    ``physical`` and their sums under ``physical_total`` (docs/spec.md, units)."""
+    from .units import describe, physical
+
+    d["units"] = {**units.to_dict(), "assumes": describe(units)}
+    total = {"bits_per_second": 0.0, "events_per_second": 0.0, "watts": 0.0}
+    for row in d["links"].values():
+        row["physical"] = physical(units, row["power"], row["bits"])
+        for key in total:
+            total[key] += row["physical"][key]
+    d["physical_total"] = total
+
+
+def physical_text(spec, scores) -> str:
+    """The physical-units table of a spec with a ``units:`` section."""
+    from .units import describe, physical
+
+    u = spec.units
+    rows = []
+    total = [0.0, 0.0, 0.0]
+    for l in spec.links:
+        s = scores.links[l.id]
+        r = physical(u, s.power, s.bits)
+        vals = [r["bits_per_second"], r["events_per_second"], r["watts"]]
+        total = [t + v for t, v in zip(total, vals)]
+        rows.append([l.id, fmt(s.power), fmt(s.bits)] + [fmt(v) for v in vals])
+    rows.append(["all links", "", ""] + [fmt(v) for v in total])
+    return (table(["link", "power", "bits/step", "bits/s", f"{u.event}/s", "energy (W)"], rows)
+            + f"\nphysical units: {describe(u)}")
 
 
 def result_to_dict(result) -> dict:
@@ -189,12 +224,13 @@ def scores_text(spec, scores, gains=None, result=None) -> str:
                           fmt(s.error), fmt(s.relative), fmt(s.activity)])
     out.append(table(["area", "tracks", "lag", "error", "err/prior", "activity"], area_rows))
     link_rows = []
+    delays = any(l.delay > 1 for l in spec.links)  # the column only where some link has one
     for l in spec.links:
         s = scores.links[l.id]
         in_budgets = [b.name for b in spec.budgets if l.id in b.links]
         # A budgeted link pays through its budget, not a price: say which.
         price = fmt(s.price) if s.price or not in_budgets else "budget " + ",".join(in_budgets)
-        row = [l.id, l.kind, fmt(s.power), fmt(s.snr), fmt(s.bits), price]
+        row = [l.id, l.kind] + ([l.delay] if delays else []) + [fmt(s.power), fmt(s.snr), fmt(s.bits), price]
         if result is not None:
             shares = [f"{b.name}:{100 * s.power / b.total:.1f}%" for b in result.budgets.values()
                       if l.id in b.links and b.total > 0]
@@ -202,10 +238,12 @@ def scores_text(spec, scores, gains=None, result=None) -> str:
             row.append(fmt(through_gain(spec, gains, l), 3))
             row.append("silent" if l.id in result.silent else "")
         link_rows.append(row)
-    header = ["link", "kind", "power", "SNR", "bits/step", "price"]
+    header = ["link", "kind"] + (["delay"] if delays else []) + ["power", "SNR", "bits/step", "price"]
     if result is not None:
         header += ["budget share", "through gain", "note"]
     out.append(table(header, link_rows))
+    if spec.units is not None:
+        out.append(physical_text(spec, scores))
     if spec.budgets and result is None:
         rows = []
         for b in spec.budgets:
@@ -296,6 +334,8 @@ EXPLANATIONS = (
     ("areas", "activity", "E||z||^2, the mean squared size of the area's whole state"),
     ("links", "link", "the link's id, FROM->TO"),
     ("links", "kind", "prediction (top-down, sends G z) or residual (bottom-up, sends S u - P p~)"),
+    ("links", "delay", "the link's conduction delay in steps: its receiver uses at t+1 what was sent at "
+                       "t - delay + 1 (shown only when some link has a delay above 1)"),
     ("links", "power", "E||s||^2, the mean squared size of what the link sends per step, before its channel adds "
                        "noise (model units squared); this is what prices and budgets charge for"),
     ("links", "SNR", "power divided by the channel's noise power: how loud the link is above its noise"),
@@ -309,6 +349,11 @@ EXPLANATIONS = (
                               "sent louder and received softer with nothing changed)"),
     ("links", "note", "'silent' when the link sends nothing at this design; below the tables, whether it was "
                       "checked not worth sending or left untested, and why (docs/search.md says what each promises)"),
+    ("physical", "bits/s", "the link's bits per step divided by the step's duration (spec `units: step`)"),
+    ("physical", "EVENT/s", "events per second (spikes, bits, ...): bits/s divided by the bits one event carries "
+                            "(map bits), or power divided by the power of one event per step (map power)"),
+    ("physical", "energy (W)", "joules per second: events per second times the energy of one event; the presets' "
+                               "numbers and their sources are in hierarchy/units.py and docs/spec.md"),
     ("budgets", "budget", "the budget group's name"),
     ("budgets", "total", "the most power the group's links may send together"),
     ("budgets", "used", "the power they send at this design"),

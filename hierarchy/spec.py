@@ -26,6 +26,7 @@ import numpy as np
 import yaml
 
 from hierarchy.errors import SpecError
+from hierarchy.units import MAPS, PRESETS, RADIO_DISTANCE, Units, radio_energy_per_bit
 from hierarchy.io import atomic_write_text
 from hierarchy.model import (
     LINK_KINDS,
@@ -52,6 +53,8 @@ MAX_NODES = 1_000_000
 #: Limit on the world's total size, on the sum of sensor, area and link sizes.
 MAX_TOTAL_DIM = 5000
 MAX_LAG = 50
+#: Longest conduction delay of a link, in steps.
+MAX_DELAY = 50
 #: Highest drawing level an area may be given (more than any real hierarchy).
 MAX_LEVEL = 1000
 #: A world (and a closed loop, see hierarchy.evaluate) is stable when its
@@ -897,6 +900,10 @@ _LINK_KEYS = (
     _Key("noise", _Matrix(), "channel-noise covariance (dim x dim)",
          default="zero"),
     _Key("price", _Real(0.0), "price per unit of power sent", default=0),
+    _Key("delay", _Int(1, MAX_DELAY),
+         "conduction delay in whole steps: the receiver uses at t+1 what was "
+         "sent at t - delay + 1 (1: the next step, as every link without it)",
+         default=1),
     _Key("pin", _Table(_LINK_PIN_KEYS),
          "gains fixed by hand: G and K on a prediction; S, P and K on a "
          "residual"),
@@ -915,6 +922,31 @@ _BUDGET_KEYS = (
          required=True, fix="add `links: all` or a list of link ids"),
     _Key("total", _Real(0.0), "the most power the group may send in total",
          required=True, fix="add `total: ...`"),
+)
+
+_UNITS_KEYS = (
+    _Key("step", _Real(0.0), "seconds one step lasts", required=True,
+         fix="add `step: 0.01` (seconds per step)"),
+    _Key("preset", _Choice(tuple(PRESETS)),
+         "documented numbers to start from: " + ", ".join(PRESETS)
+         + " (hierarchy/units.py names their sources)"),
+    _Key("map", _Choice(MAPS),
+         "how a link's signal becomes events: bits (its Gaussian channel "
+         "capacity per step) or power (E||s||^2, a linear map)",
+         default="bits"),
+    _Key("event", _Text(),
+         "what one event is, for reports (spike, bit, packet); default: the "
+         "preset's, else `event`"),
+    _Key("bits_per_event", _Real(0.0),
+         "bits one event carries (map bits); default: the preset's, else 1"),
+    _Key("power_per_event", _Real(0.0),
+         "model power that makes one event per step (map power, required "
+         "there)"),
+    _Key("energy_per_event", _Real(0.0),
+         "joules per event; default: the preset's (required without one)"),
+    _Key("distance", _Real(0.0),
+         f"metres between a radio link's ends (preset radio only); default "
+         f"{RADIO_DISTANCE:g}"),
 )
 
 _TOP_KEYS = (
@@ -937,6 +969,9 @@ _TOP_KEYS = (
     _Key("budgets", _ListOf(_Table(_BUDGET_KEYS),
                             "{name: N, links: all, total: 1.0}"),
          "hard limits on the total power of groups of links", default=[]),
+    _Key("units", _Table(_UNITS_KEYS),
+         "physical units for reports: seconds per step and the energy of a "
+         "link's signal; changes no computed number"),
 )
 
 
@@ -1273,7 +1308,80 @@ def _link(draft: _LinkDraft, drafts_by_id: dict, node_dims: dict,
     pin = _link_pins(draft, drafts_by_id, node_dims, sensor_names)
     return Link(source=draft.source, target=draft.target, kind=draft.kind,
                 dim=draft.dim, noise=frozen_array(noise), price=f.get("price"),
-                pin=frozen_map(pin))
+                pin=frozen_map(pin), delay=f.get("delay"))
+
+
+def _parse_units(f: _Fields | None) -> Units | None:
+    """The ``units:`` section: a preset's numbers, overridden by what the
+    section states; every event count needs a positive size."""
+    if f is None:
+        return None
+    step = f.get("step")
+    if not step > 0:
+        f.pos("step").fail("a step must last some time, got 0",
+                           fix="give the step's duration in seconds, e.g. `step: 0.01`")
+    preset = PRESETS.get(f.get("preset")) if f.given("preset") else None
+    kind = f.get("map")
+    wrong = "power_per_event" if kind == "bits" else "bits_per_event"
+    if f.given(wrong):
+        f.pos(wrong).fail(f"`{wrong}` does not apply to `map: {kind}`",
+                          fix=f"remove `{wrong}`, or write `map: "
+                              f"{'power' if kind == 'bits' else 'bits'}`")
+    if f.given("distance") and (preset is None or preset.name != "radio"):
+        f.pos("distance").fail("a distance applies only to the radio preset",
+                               fix="remove `distance`, or write `preset: radio`")
+    if kind == "bits":
+        if f.given("bits_per_event"):
+            per_event = f.get("bits_per_event")
+        else:
+            per_event = preset.bits_per_event if preset else 1.0
+        size = "bits_per_event"
+    else:
+        if not f.given("power_per_event"):
+            f.pos("power_per_event").fail(
+                "`map: power` needs the model power that makes one event per step",
+                fix="add `power_per_event: ...` (model units of power)")
+        per_event, size = f.get("power_per_event"), "power_per_event"
+    if not per_event > 0:
+        f.pos(size).fail(f"`{size}` must be above 0, got 0",
+                         fix=f"give how much one event is worth, e.g. `{size}: 1`")
+    distance = None
+    if f.given("energy_per_event"):
+        if f.given("distance"):
+            f.pos("distance").fail(
+                "the distance sets the radio's energy per bit, and "
+                "`energy_per_event` gives it too",
+                fix="keep one of `distance` and `energy_per_event`")
+        energy = f.get("energy_per_event")
+    elif preset is None:
+        f.pos("energy_per_event").fail(
+            "without a preset the energy of one event must be given",
+            fix="add `energy_per_event: ...` (joules), or `preset: "
+                + " | ".join(PRESETS) + "`")
+    elif preset.energy_per_event is None:  # radio: from the distance
+        distance = f.get("distance") if f.given("distance") else RADIO_DISTANCE
+        energy = radio_energy_per_bit(distance)
+    else:
+        energy = preset.energy_per_event
+    event = f.get("event") if f.given("event") else (preset.event if preset else "event")
+    return Units(step=step, map=kind, event=event.strip(), per_event=per_event,
+                 energy_per_event=energy, preset=preset.name if preset else None,
+                 distance=distance, sources=preset.sources if preset else ())
+
+
+def _check_delay_states(drafts: list, links: tuple) -> None:
+    """A link of delay k keeps k - 1 copies of its signal in the closed
+    loop; refuse delays whose copies together pass the size limit."""
+    total = 0
+    for draft, link in zip(drafts, links):
+        total += (link.delay - 1) * link.dim
+        if total > MAX_TOTAL_DIM:
+            draft.fields.pos("delay").fail(
+                f"too large: the links' delays keep {total} delayed signal "
+                f"numbers in the closed loop so far (each link of delay k "
+                f"keeps k - 1 copies of its signal); the limit is "
+                f"{MAX_TOTAL_DIM}",
+                fix="use shorter delays or narrower links")
 
 
 def _link_pins(draft, drafts_by_id, node_dims, sensor_names) -> dict:
@@ -1469,6 +1577,7 @@ def _parse_document(root: _At, path) -> Spec:
     drafts_by_id = {d.id: d for d in drafts}
     links = tuple(_link(d, drafts_by_id, node_dims, sensor_names)
                   for d in drafts)
+    _check_delay_states(drafts, links)
     budgets = _parse_budgets(top.get("budgets"), links, node_dims)
     _check_costs(drafts, links, budgets)
     default_name = Path(path).stem if path else "unnamed"
@@ -1477,7 +1586,8 @@ def _parse_document(root: _At, path) -> Spec:
                 version=SPEC_VERSION,
                 warnings=_warnings(drafts, links, sensor_names)
                 + _flat_list_warnings(top.get("sensors")),
-                path=str(path) if path is not None else None)
+                path=str(path) if path is not None else None,
+                units=_parse_units(top.get("units")))
 
 
 # --------------------------------------------------------------------------
