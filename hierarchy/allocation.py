@@ -31,6 +31,8 @@ __all__ = ["Constraints", "constraints", "Allocation"]
 #: Clarabel's tolerances. Its defaults (1e-8) leave the duals wrong by
 #: about 1e-6 relative, which the shadow prices would inherit; the program
 #: is small, so the extra interior-point steps cost little.
+#: Scaled duals below this (times the largest, or 1) are slack rows' zeros.
+DUAL_FLOOR = 1e-9
 TOLERANCES = dict(tol_gap_abs=1e-12, tol_gap_rel=1e-12, tol_feas=1e-12, tol_ktratio=1e-10)
 
 
@@ -50,6 +52,8 @@ class Constraints:
         The right-hand sides.
     links : tuple of tuple
         The link ids each row covers (its nonzero columns of ``W``).
+    cap_of : tuple
+        For a cap row the link it caps, else ``None``.
     """
 
     names: tuple
@@ -57,6 +61,14 @@ class Constraints:
     V: np.ndarray
     totals: np.ndarray
     links: tuple
+    cap_of: tuple = ()
+
+    def subset(self, keep) -> "Constraints":
+        """The rows where ``keep`` is true."""
+        keep = np.asarray(keep, bool)
+        pick = lambda seq: tuple(x for x, k in zip(seq, keep) if k)
+        return Constraints(pick(self.names), self.W[keep], self.V[keep], self.totals[keep], pick(self.links),
+                           pick(self.cap_of))
 
     @property
     def has_activity(self) -> bool:
@@ -78,7 +90,7 @@ def constraints(spec) -> Constraints:
     """
     index = {l.id: i for i, l in enumerate(spec.links)}
     areas = {a.name: i for i, a in enumerate(spec.areas)}
-    names, W, V, totals, links = [], [], [], [], []
+    names, W, V, totals, links, cap_of = [], [], [], [], [], []
     for b in spec.budgets:
         w, v = np.zeros(len(spec.links)), np.zeros(len(spec.areas))
         for lid in b.links:
@@ -86,15 +98,16 @@ def constraints(spec) -> Constraints:
         for area, weight in b.activity.items():
             v[areas[area]] = weight
         names.append(b.name), W.append(w), V.append(v), totals.append(b.total), links.append(tuple(b.links))
+        cap_of.append(None)
         for lid, cap in b.caps.items():
             w = np.zeros(len(spec.links))
             w[index[lid]] = 1.0
             names.append(f"{b.name}: cap {lid}"), W.append(w), V.append(np.zeros(len(spec.areas)))
-            totals.append(cap), links.append((lid,))
+            totals.append(cap), links.append((lid,)), cap_of.append(lid)
     shape = (0, len(spec.links)), (0, len(spec.areas))
     return Constraints(tuple(names), np.array(W).reshape(-1, len(spec.links)) if W else np.zeros(shape[0]),
                        np.array(V).reshape(-1, len(spec.areas)) if V else np.zeros(shape[1]),
-                       np.array(totals, float), tuple(links))
+                       np.array(totals, float), tuple(links), tuple(cap_of))
 
 
 class Allocation:
@@ -194,6 +207,9 @@ class Allocation:
             except cp.error.SolverError:
                 continue
             if self._problem.status in (cp.OPTIMAL, cp.OPTIMAL_INACCURATE) and self._q.value is not None:
-                duals = np.maximum(np.asarray(self._rows.dual_value, float), 0.0) * scale / self._row_scale
+                duals = np.maximum(np.asarray(self._rows.dual_value, float), 0.0)
+                # An interior-point dual of a slack row is tiny, not zero.
+                duals[duals <= DUAL_FLOOR * max(float(duals.max(initial=0.0)), 1.0)] = 0.0
+                duals *= scale / self._row_scale
                 return np.maximum(self._q.value, 0.0) * N, duals
         return None

@@ -89,11 +89,18 @@ class Options:
 
 @dataclass
 class BudgetUse:
+    """One budget row at a design: a budget, or a cap on one of its links
+    (``cap_of`` names the link). ``used`` counts each link's power times its
+    cost weight (``costs``, default 1) plus the weighted ``activity``."""
+
     name: str
     total: float
     used: float
     shadow_price: float
     links: tuple
+    costs: dict = field(default_factory=dict)
+    activity: dict = field(default_factory=dict)
+    cap_of: str | None = None
 
     @property
     def met(self) -> bool:
@@ -746,7 +753,7 @@ def design_budgets(spec: Spec, options: Options | None = None, start: Gains | No
     >>> res.budgets["upward"].shadow_price                         # doctest: +SKIP
     0.031...
     """
-    from .allocation import Constraints, constraints
+    from .allocation import constraints
 
     opts = options or Options()
     t0 = time.perf_counter()
@@ -754,8 +761,7 @@ def design_budgets(spec: Spec, options: Options | None = None, start: Gains | No
     zero = every.totals <= 0
     off = {spec.links[i].id for g in np.flatnonzero(zero) for i in np.flatnonzero(every.W[g])}
     work = _switched_off(spec, off)
-    rows = Constraints(tuple(n for n, z in zip(every.names, zero) if not z), every.W[~zero], every.V[~zero],
-                       every.totals[~zero], tuple(x for x, z in zip(every.links, zero) if not z))
+    rows = every.subset(~zero)
     bcd = _BlockDescent(work, rows, opts)
     starts = None if start is None else [bcd.ref.pack(with_pins(work, start))]
     best, iterations, nstarts, message = bcd.run(starts)
@@ -771,8 +777,11 @@ def design_budgets(spec: Spec, options: Options | None = None, start: Gains | No
     if np.any(zero):
         mu_all[zero] = _zero_prices(spec, result.gains, every, zero, mu_all)
     used = every.used(powers, activity)
-    for name, total, u, m, links in zip(every.names, every.totals, used, mu_all, every.links):
-        result.budgets[name] = BudgetUse(name, float(total), float(u), float(m), links)
+    for g, (name, total, u, m, links) in enumerate(zip(every.names, every.totals, used, mu_all, every.links)):
+        costs = {spec.links[i].id: float(every.W[g, i]) for i in np.flatnonzero(every.W[g])}
+        areas = {a.name: float(every.V[g, k]) for k, a in enumerate(spec.areas) if every.V[g, k]}
+        result.budgets[name] = BudgetUse(name, float(total), float(u), float(m), links, costs, areas,
+                                         every.cap_of[g])
     for lid in off:
         result.silent[lid] = _off_reason(spec, lid, every, zero, mu_all)
     unmet = [b.name for b in result.budgets.values() if not b.met]

@@ -111,7 +111,9 @@ def result_to_dict(result) -> dict:
         },
         "budgets": {
             name: {"total": b.total, "used": b.used, "shadow_price": b.shadow_price,
-                   "links": list(b.links), "met": b.met}
+                   "links": list(b.links), "met": b.met,
+                   "costs": {lid: w for lid, w in b.costs.items() if w != 1},
+                   "activity": dict(b.activity), "cap_of": b.cap_of}
             for name, b in result.budgets.items()
         },
     })
@@ -122,7 +124,7 @@ def result_to_dict(result) -> dict:
         row["silent_verdict"] = info.get("verdict")
         row["silent_stream"] = info.get("stream")
         row["share_of_budget"] = {
-            name: (result.scores.links[lid].power / b.total if b.total > 0 else None)
+            name: (b.costs.get(lid, 1.0) * result.scores.links[lid].power / b.total if b.total > 0 else None)
             for name, b in result.budgets.items() if lid in b.links
         }
     if result.reference is not None:
@@ -201,10 +203,14 @@ def scores_text(spec, scores, gains=None, result=None) -> str:
         header += ["budget share", "through gain", "note"]
     out.append(table(header, link_rows))
     if spec.budgets and result is None:
+        from .allocation import constraints
+
         rows = []
-        for b in spec.budgets:
-            used = sum(scores.links[lid].power for lid in b.links)
-            rows.append([b.name, fmt(b.total), fmt(used), "yes" if used <= b.total * (1 + 1e-6) else "NO (over)"])
+        cons = constraints(spec)
+        spent = cons.used([scores.links[l.id].power for l in spec.links],
+                          [scores.areas[a.name].activity for a in spec.areas])
+        for name, total, used in zip(cons.names, cons.totals, spent):
+            rows.append([name, fmt(total), fmt(used), "yes" if used <= total * (1 + 1e-6) else "NO (over)"])
         out.append(table(["budget", "total", "used by these gains", "within"], rows))
     out.append(
         f"objective {fmt(scores.objective, 6)} = weighted error {fmt(scores.weighted_error, 6)}"
@@ -225,7 +231,8 @@ def result_text(result) -> str:
         rows = [[b.name, fmt(b.total), fmt(b.used), f"{100 * b.used / b.total:.2f}%" if b.total else "-",
                  fmt(b.shadow_price), "yes" if b.met else "NO"] for b in result.budgets.values()]
         parts.append(table(["budget", "total", "used", "use", "shadow price", "met"], rows))
-    for verdict, head in (("not worth sending", "not worth sending (checked at this design):"),
+    for verdict, head in (("switched off", "switched off by a zero budget:"),
+                          ("not worth sending", "not worth sending (checked at this design):"),
                           ("untested", "silent, but not checked at this design:")):
         rows = [f"  {lid}: {info['reason']}" for lid, info in result.silent.items() if info.get("verdict") == verdict]
         if rows:
