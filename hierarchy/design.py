@@ -882,6 +882,7 @@ class _BlockDescent:
             sc = score(prob.layout, prob.unpack(theta))
             activity = np.array([sc.areas[a.name].activity for a in self.spec.areas])
         self._measured = (key, (powers, activity, slopes))
+        self.value = J
         return powers, activity, slopes
 
     def allocate(self, theta, spread):
@@ -994,7 +995,11 @@ class _BlockDescent:
         powers, activity, _ = m
         over = (self.rows.used(powers, activity) - self.rows.totals) / self.rows.totals
         binding = self.mu > 0
-        miss = max(float(np.max(np.abs(over[binding]), initial=0.0)), float(np.max(over, initial=0.0)))
+        # A miss worth less than the solver's resolution in the objective
+        # cannot be closed by prices (the gradient would not see them).
+        below = self.mu * np.abs(over) * self.rows.totals <= self.opts.gtol * abs(self.value)
+        miss = max(float(np.max(np.abs(over[binding & ~below]), initial=0.0)),
+                   float(np.max(over[~below], initial=0.0)))
         return miss, bool(np.all(binding | (over <= self.opts.budget_rtol)))
 
 
