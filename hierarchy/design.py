@@ -909,7 +909,35 @@ class _BlockDescent:
         boxed = np.array([np.any(at_top[w > 0]) for w in self.rows.W])
         slack = self.rows.used(p, activity) < self.rows.totals * (1 - 1e-3)
         free = (mu == 0) & slack & ~boxed
-        return np.where((old > 0) & ~free, np.clip(mu, old / spread ** 2, old * spread ** 2), mu)
+        mu = np.where((old > 0) & ~free, np.clip(mu, old / spread ** 2, old * spread ** 2), mu)
+        return self._secant(mu, powers, activity)
+
+    def _secant(self, mu, powers, activity):
+        """Scale each row's step by how far the last one got: the model's
+        curvature is only the Gaussian channel's, and a row whose miss
+        flipped sign at nearly its own size (the step twice too long) would
+        otherwise swing about its total for many steps. The step of row g
+        is ``alpha_g`` times the model's; ``alpha_g`` is divided by the
+        ratio of the miss's actual change to the change the model promised
+        (a secant estimate, Dennis and Schnabel, 1983, section 8.1, one row
+        at a time)."""
+        over = (self.rows.used(powers, activity) - self.rows.totals) / self.rows.totals
+        if not hasattr(self, "_alpha"):
+            self._alpha = np.ones(len(mu))
+        last = getattr(self, "_last", None)
+        if last is not None:
+            old_over, moved = last
+            promised = -old_over
+            actual = over - old_over
+            ok = moved & (np.abs(promised) > 0) & np.isfinite(actual)
+            ratio = np.where(ok, actual / np.where(ok, promised, 1.0), 1.0)
+            good = ok & (ratio > 0.05)
+            self._alpha = np.where(good, np.clip(self._alpha / np.where(good, ratio, 1.0), 0.1, 2.0), self._alpha)
+        step = np.where(self.mu > 0, self._alpha, 1.0) * (mu - self.mu)
+        new = np.maximum(self.mu + step, 0.0)
+        new[mu == 0] = 0.0
+        self._last = (over, (self.mu > 0) & (mu > 0) & (np.abs(step) > 0))
+        return new
 
     def first_prices(self, theta):
         """Multipliers to start from: the allocation at the start, with a
@@ -1155,7 +1183,8 @@ def _meet_budgets(prob: Problem, theta, rows, mu):
             break
         A = charged[active]
         alpha = np.linalg.lstsq((W[active] * powers) @ A.T, (totals - used)[active], rcond=None)[0]
-        _scale_links(prob, theta, np.sqrt(np.clip(1.0 + A.T @ alpha, 1e-4, None)))
+        if not _scale_stably(prob, theta, np.sqrt(np.clip(1.0 + A.T @ alpha, 1e-4, None))):
+            break
     # Safety: whatever the rounds left, no row may be exceeded.
     for _ in range(5):
         powers, used = use()
@@ -1165,8 +1194,22 @@ def _meet_budgets(prob: Problem, theta, rows, mu):
         for g in np.flatnonzero(used > totals):
             at = W[g] > 0
             factor[at] = np.minimum(factor[at], np.sqrt(totals[g] / used[g]) * (1 - 0.1 * BUDGET_TOL))
-        _scale_links(prob, theta, factor)
+        if not _scale_stably(prob, theta, factor):
+            break
     return theta
+
+
+def _scale_stably(prob: Problem, theta, factor) -> bool:
+    """Scale the links by ``factor`` (in place), or by a root of it if the
+    full scaling would leave the stable set (a pinned receiver does not
+    scale back, so the loop gain changes); ``False`` if no root keeps it."""
+    for k in range(6):
+        trial = theta.copy()
+        _scale_links(prob, trial, np.asarray(factor, float) ** (0.5 ** k))
+        if np.all(np.isfinite(_powers(prob, trial))):
+            theta[:] = trial
+            return True
+    return False
 
 
 def _powers(prob: Problem, theta) -> np.ndarray:
