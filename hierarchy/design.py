@@ -807,9 +807,12 @@ BLOCK_SETTLED = 1e-2
 BUDGET_ITER = 2
 #: The allocation's trust region: powers within [p / spread, p spread].
 SPREAD = (1.05, 2.0, 8.0)  # (smallest, first, largest)
-#: Budgets within this (relative) of their totals are close enough for the
-#: full polish with wake-up tests.
-COARSE_TOL = 1e-3
+#: Budgets within this (relative) of their totals, or this many cheap
+#: steps, call for the full polish with wake-up tests (the price form's own
+#: polish, up to ``max_iter``) at the multipliers reached; the steps after
+#: it follow the smaller price changes that remain.
+COARSE_TOL = 1e-2
+COARSE_STEPS = 25
 
 
 class _BlockDescent:
@@ -828,6 +831,7 @@ class _BlockDescent:
         self.alloc = Allocation(rows, np.where(noise > 0, noise, 1.0))
         self.mu = np.zeros(len(rows.names))
         self.prob = self.ref
+        self.settled = False  # whether the last gains step ended stationary
         # A link in no budget row, or whose sender is pinned, keeps its power.
         self.fixed = ~np.any(rows.W > 0, axis=0) | np.array(
             [not self.ref.sender_slices(l.id) for l in spec.links])
@@ -896,6 +900,7 @@ class _BlockDescent:
         if out is None:
             return None
         p, mu = out
+        self.allocated = (theta, powers, p)
         # The trust region in prices: a multiplier moves by at most spread^2
         # (as the Gaussian-channel power p ~ lambda^-1/2 would for a change
         # of spread in power). Where the box, not the budget, binds (links at
@@ -912,6 +917,36 @@ class _BlockDescent:
         mu = np.where((old > 0) & ~free, np.clip(mu, old / spread ** 2, old * spread ** 2), mu)
         return self._secant(mu, powers, activity)
 
+    def _predict(self, best):
+        """Move the design to the allocated powers before the next gains
+        step: scale each link's sender by ``sqrt(p_new / p)`` and what uses
+        its signal by the inverse (the SNR direction the new prices push
+        it along), kept only if it lowers the Lagrangian at the new prices.
+        This is the allocation block's own move; without it the gains block
+        would have to find the new powers along the slow gauge valleys."""
+        theta, powers, p = getattr(self, "allocated", (None, None, None))
+        if theta is None or theta is not best.x:
+            return best
+        ratio = np.where((powers > 0) & ~self.fixed, p / np.where(powers > 0, powers, 1.0), 1.0)
+        factor = np.sqrt(np.clip(ratio, 0.25, 4.0))
+        if np.all(np.abs(factor - 1.0) < 1e-12):
+            return best
+        f0, _ = self.prob.value_and_grad(best.x)
+        trial = best.x.copy()
+        for link, c in zip(self.spec.links, factor):
+            if c == 1.0:
+                continue
+            for sl in self.prob.sender_slices(link.id):
+                trial[sl] *= c
+            for sl in _receivers(self.prob, link):
+                trial[sl] /= c
+        f1, _ = self.prob.value_and_grad(trial)
+        if np.isfinite(f1) and f1 < f0:
+            from dataclasses import replace
+
+            return replace(best, x=trial, f=f1)
+        return best
+
     def _secant(self, mu, powers, activity):
         """Scale each row's step by how far the last one got: the model's
         curvature is only the Gaussian channel's, and a row whose miss
@@ -925,7 +960,9 @@ class _BlockDescent:
         if not hasattr(self, "_alpha"):
             self._alpha = np.ones(len(mu))
         last = getattr(self, "_last", None)
-        if last is not None:
+        # Only a stationary design's miss measures the step (before, the
+        # design's own progress moves it too).
+        if last is not None and self.settled:
             old_over, moved = last
             promised = -old_over
             actual = over - old_over
@@ -936,7 +973,8 @@ class _BlockDescent:
         step = np.where(self.mu > 0, self._alpha, 1.0) * (mu - self.mu)
         new = np.maximum(self.mu + step, 0.0)
         new[mu == 0] = 0.0
-        self._last = (over, (self.mu > 0) & (mu > 0) & (np.abs(step) > 0))
+        # Only a step from one stationary design to the next is measured.
+        self._last = (over, (self.mu > 0) & (mu > 0) & (np.abs(step) > 0)) if self.settled else None
         return new
 
     def first_prices(self, theta):
@@ -965,14 +1003,14 @@ class _BlockDescent:
         spread, polished, curvature, message = SPREAD[1], False, None, ""
         last_miss, block = np.inf, BLOCK_ITER
         left = BUDGET_ITER * opts.max_iter - iterations
-        for _ in range(opts.budget_rounds):
+        for step in range(opts.budget_rounds):
             if not np.isfinite(best.f) or left <= 0:
                 break
             miss, slack = self._gaps(best.x)
-            coarse = miss <= COARSE_TOL
+            coarse = miss <= COARSE_TOL or step >= COARSE_STEPS
             if coarse and not polished:
                 # Near the budgets: switch off fading links, wake silent ones.
-                out, used = _polish(self.prob, best.x, opts, max(left // 2, 1))
+                out, used = _polish(self.prob, best.x, opts, min(left, opts.max_iter))
                 polished, curvature = True, None
             else:
                 out = minimise(self.prob.value_and_grad, best.x, max_iter=min(block, left), gtol=opts.gtol,
@@ -983,6 +1021,7 @@ class _BlockDescent:
             if not np.isfinite(out.f):
                 break
             best = out
+            self.settled = polished and best.status == CONVERGED
             miss, slack = self._gaps(best.x)
             mu = self.allocate(best.x, spread)
             if mu is None:
@@ -998,6 +1037,7 @@ class _BlockDescent:
             last_miss = miss
             block = min(2 * block, CHUNK) if change < BLOCK_SETTLED else BLOCK_ITER
             self.set_prices(mu)
+            best = self._predict(best)
         else:
             message = f"budgets not spent to {opts.budget_rtol:g} at a stationary design after " \
                       f"{opts.budget_rounds} block steps"
