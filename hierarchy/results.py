@@ -222,6 +222,16 @@ def scores_text(spec, scores, gains=None, result=None) -> str:
     return "\n\n".join(out)
 
 
+def budget_terms(row: dict) -> str:
+    """What a budget row of a result counts beyond plain link powers: cost
+    weights, areas' activity, or the link it caps."""
+    if row.get("cap_of"):
+        return f"cap on {row['cap_of']}"
+    parts = [f"{lid} x{w:g}" for lid, w in (row.get("costs") or {}).items() if w != 1]
+    parts += [f"activity {a}" + (f" x{w:g}" if w != 1 else "") for a, w in (row.get("activity") or {}).items()]
+    return ", ".join(parts) or "powers"
+
+
 def result_text(result) -> str:
     """The full report of a design."""
     spec = result.spec
@@ -229,8 +239,10 @@ def result_text(result) -> str:
     parts.append(scores_text(spec, result.scores, result.gains, result))
     if result.budgets:
         rows = [[b.name, fmt(b.total), fmt(b.used), f"{100 * b.used / b.total:.2f}%" if b.total else "-",
-                 fmt(b.shadow_price), "yes" if b.met else "NO"] for b in result.budgets.values()]
-        parts.append(table(["budget", "total", "used", "use", "shadow price", "met"], rows))
+                 fmt(b.shadow_price), "yes" if b.met else "NO",
+                 budget_terms({"cap_of": b.cap_of, "costs": b.costs, "activity": b.activity})]
+                for b in result.budgets.values()]
+        parts.append(table(["budget", "total", "used", "use", "shadow price", "met", "terms"], rows))
     for verdict, head in (("switched off", "switched off by a zero budget:"),
                           ("not worth sending", "not worth sending (checked at this design):"),
                           ("untested", "silent, but not checked at this design:")):
@@ -296,7 +308,10 @@ EXPLANATIONS = (
                       "checked not worth sending or left untested, and why (docs/search.md says what each promises)"),
     ("budgets", "budget", "the budget group's name"),
     ("budgets", "total", "the most power the group's links may send together"),
-    ("budgets", "used", "the power they send at this design"),
+    ("budgets", "used", "what they spend at this design: each link's power times its cost weight, plus the "
+                        "weighted activity of the budget's areas"),
+    ("budgets", "terms", "what the budget counts beyond plain powers: cost weights other than 1, areas' "
+                         "activity, or (a cap row) the one link it caps"),
     ("budgets", "use", "used as a percentage of total"),
     ("budgets", "shadow price", "how much the objective would fall per unit of extra budget (the Lagrange "
                                 "multiplier); 0 when the budget does not bind"),
