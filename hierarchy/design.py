@@ -766,6 +766,14 @@ def design_budgets(spec: Spec, options: Options | None = None, start: Gains | No
     starts = None if start is None else [bcd.ref.pack(with_pins(work, start))]
     best, iterations, nstarts, message = bcd.run(starts)
     prob = bcd.prob
+    if rows.has_activity:
+        # Score under the spec's own activity prices, not the Lagrangian's.
+        ref = bcd.ref
+        ref.prices = prob.prices.copy()
+        for attr in ("silence_checked", "stream_cover"):
+            if hasattr(prob, attr):
+                setattr(ref, attr, getattr(prob, attr))
+        prob = ref
     theta = _meet_budgets(prob, best.x, rows, bcd.mu)
     result = _finish(prob, theta, best, iterations, nstarts, time.perf_counter() - t0, "budget",
                      shadow=_shadow_text(spec, rows, bcd.mu))

@@ -168,6 +168,9 @@ def test_activity_in_a_budget_prices_it_like_an_activity_price():
     assert res.status == "converged", res.message
     assert res.budgets["b"].shadow_price == pytest.approx(lam, rel=1e-4)
     assert res.budgets["b"].used == pytest.approx(total, rel=1e-6)
+    # The objective is the spec's own (no activity price), not the Lagrangian's.
+    assert res.objective == pytest.approx(res.scores.weighted_error, rel=1e-12)
+    assert res.scores.activity_cost == 0.0
 
 
 def test_each_sender_makes_one_budget_per_sending_node():
