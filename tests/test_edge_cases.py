@@ -195,8 +195,9 @@ def test_budget_form_is_right_or_says_it_is_not(c):
     assert_honest(res)
     if res.status == "converged":
         assert res.scores.areas["a"].error == pytest.approx(c / 2, rel=1e-5)
-        # The multiplier search stops within budget_rtol (1e-3) of the budget.
-        assert res.budgets["b"].shadow_price == pytest.approx(0.125, rel=5e-3)
+        # The block steps end within budget_rtol (3e-5) of the budget, and the
+        # allocation's Newton step corrects the multiplier for the rest.
+        assert res.budgets["b"].shadow_price == pytest.approx(0.125, rel=1e-4)
     else:
         assert res.message
 
