@@ -770,6 +770,7 @@ def design_budgets(spec: Spec, options: Options | None = None, start: Gains | No
         # Score under the spec's own activity prices, not the Lagrangian's.
         ref = bcd.ref
         ref.prices = prob.prices.copy()
+        ref.evaluations = prob.evaluations
         for attr in ("silence_checked", "stream_cover"):
             if hasattr(prob, attr):
                 setattr(ref, attr, getattr(prob, attr))
@@ -852,7 +853,9 @@ class _BlockDescent:
 
             kappa = self.kappa + self.rows.V.T @ self.mu
             areas = tuple(replace(a, activity_price=float(k)) for a, k in zip(self.spec.areas, kappa))
+            count = self.prob.evaluations
             self.prob = Problem(replace(self.spec, areas=areas))
+            self.prob.evaluations = count  # one count over the whole design
         self.prob.prices = self.base + self.rows.W.T @ self.mu
 
     def measure(self, theta):
