@@ -58,7 +58,8 @@ class Options:
     restarts : int
         Starts tried (the informed start plus seeded random ones).
     max_iter : int
-        L-BFGS iterations for the best start.
+        L-BFGS iterations for the best start (the budget form may use
+        ``BUDGET_ITER`` times this over its block steps).
     probe_iter : int
         Iterations each start gets before the best one is carried on.
     seed : int
@@ -800,8 +801,7 @@ def design_budgets(spec: Spec, options: Options | None = None, start: Gains | No
     elif message and result.status == CONVERGED:
         result.status = ITERATION_LIMIT
     if message:
-        result.message = message if not result.message or result.status == CONVERGED else \
-            f"{result.message}; {message}"
+        result.message = f"{result.message}; {message}" if result.message else message
     return result
 
 

@@ -213,3 +213,29 @@ def test_the_schema_knows_the_new_budget_keys():
     good["budgets"][0]["each"] = "nobody"
     with pytest.raises(jsonschema.ValidationError):
         jsonschema.validate(good, spec_schema())
+
+
+def test_check_and_the_result_tables_show_the_new_budget_terms(tmp_path, capsys):
+    from hierarchy.cli import main
+    from hierarchy.results import result_text
+
+    text = FILTER % ("", "") + """budgets:
+  - {name: b, links: all, total: 0.6, costs: {a->s: 2}, caps: {s->a: 0.3}, activity: {a: 0.1}}
+  - {name: out, links: all, total: 0.5, each: sender}
+"""
+    path = tmp_path / "s.yaml"
+    path.write_text(text)
+    assert main(["check", str(path)]) == 0
+    out = capsys.readouterr().out
+    assert "link a->s: prediction, 1-dim, noise power 0.1, budgets b (cost 2), out[a]" in out
+    assert "budget b: total 0.6 over 2 link(s), 1 cost weight(s), 1 cap(s), activity of a x0.1" in out
+    res = design_budgets(parse_spec(text), OPTS)
+    table = result_text(res)
+    assert "b: cap s->a" in table and "cap on s->a" in table and "a->s x2, activity a x0.1" in table
+    data = res.to_dict()
+    assert data["budgets"]["b"]["costs"] == {"a->s": 2.0}
+    assert data["budgets"]["b: cap s->a"]["cap_of"] == "s->a"
+    # What a row counts is recomputed here from the reported powers.
+    powers = {lid: row["power"] for lid, row in data["links"].items()}
+    used = powers["s->a"] + 2 * powers["a->s"] + 0.1 * data["areas"]["a"]["activity"]
+    assert data["budgets"]["b"]["used"] == pytest.approx(used, rel=1e-12)
