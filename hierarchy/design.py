@@ -1218,46 +1218,57 @@ def _meet_budgets(prob: Problem, theta, rows, mu):
         return theta
     charged = (W > 0).astype(float)
 
-    def use():
-        powers = _powers(prob, theta)
+    def use(th):
+        powers = _powers(prob, th)
         activity = np.zeros(rows.V.shape[1])
-        if rows.has_activity:
-            sc = score(prob.layout, prob.unpack(theta))
+        if rows.has_activity and np.all(np.isfinite(powers)):
+            from .errors import UnstableError
+
+            try:
+                sc = score(prob.layout, prob.unpack(th))
+            except UnstableError:  # badly conditioned: as good as unstable
+                return powers, np.full(len(totals), np.inf)
             activity = np.array([sc.areas[a.name].activity for a in prob.spec.areas])
         return powers, rows.used(powers, activity)
 
+    def usable(th):
+        return bool(np.all(np.isfinite(use(th)[1])))
+
     for _ in range(12):
-        powers, used = use()
+        powers, used = use(theta)
         active = (mu > 0) | (used > totals)
         away = np.abs(used - totals) > 0.1 * BUDGET_TOL * totals
-        if not np.any(active & away):
+        if not np.any(active & away) or not np.all(np.isfinite(used)):
             break
         A = charged[active]
         alpha = np.linalg.lstsq((W[active] * powers) @ A.T, (totals - used)[active], rcond=None)[0]
-        if not _scale_stably(prob, theta, np.sqrt(np.clip(1.0 + A.T @ alpha, 1e-4, None))):
+        # At most a factor 10 in power per round: a row that activity alone
+        # overspends cannot be met by scaling links, and must not blow them up.
+        if not _scale_stably(prob, theta, np.sqrt(np.clip(1.0 + A.T @ alpha, 0.1, 10.0)), usable):
             break
     # Safety: whatever the rounds left, no row may be exceeded.
     for _ in range(5):
-        powers, used = use()
-        if np.all(used <= totals * (1 + 0.5 * BUDGET_TOL)):
+        powers, used = use(theta)
+        if not np.all(np.isfinite(used)) or np.all(used <= totals * (1 + 0.5 * BUDGET_TOL)):
             break
         factor = np.ones(len(prob.spec.links))
         for g in np.flatnonzero(used > totals):
             at = W[g] > 0
-            factor[at] = np.minimum(factor[at], np.sqrt(totals[g] / used[g]) * (1 - 0.1 * BUDGET_TOL))
-        if not _scale_stably(prob, theta, factor):
+            factor[at] = np.minimum(factor[at], np.sqrt(max(totals[g] / used[g], 0.1)) * (1 - 0.1 * BUDGET_TOL))
+        if not _scale_stably(prob, theta, factor, usable):
             break
     return theta
 
 
-def _scale_stably(prob: Problem, theta, factor) -> bool:
+def _scale_stably(prob: Problem, theta, factor, usable) -> bool:
     """Scale the links by ``factor`` (in place), or by a root of it if the
     full scaling would leave the stable set (a pinned receiver does not
-    scale back, so the loop gain changes); ``False`` if no root keeps it."""
+    scale back, so the loop gain changes) or make the design unusable
+    (``usable(theta)`` false); ``False`` if no root keeps it usable."""
     for k in range(6):
         trial = theta.copy()
         _scale_links(prob, trial, np.asarray(factor, float) ** (0.5 ** k))
-        if np.all(np.isfinite(_powers(prob, trial))):
+        if usable(trial):
             theta[:] = trial
             return True
     return False
