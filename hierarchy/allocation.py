@@ -75,8 +75,12 @@ class Constraints:
         return bool(np.any(self.V))
 
     def used(self, powers, activity) -> np.ndarray:
-        """What every row spends at these powers and activities."""
-        return self.W @ np.asarray(powers, float) + self.V @ np.asarray(activity, float)
+        """What every row spends at these powers and activities (``inf``
+        for every row when the loop is unstable and the powers are)."""
+        powers, activity = np.asarray(powers, float), np.asarray(activity, float)
+        if not (np.all(np.isfinite(powers)) and np.all(np.isfinite(activity))):
+            return np.full(len(self.totals), np.inf)
+        return self.W @ powers + self.V @ activity
 
 
 def constraints(spec) -> Constraints:
