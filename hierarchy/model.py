@@ -163,12 +163,22 @@ class Link:
 
 @dataclass(frozen=True)
 class Budget:
-    """A hard energy budget: total power of ``links`` at most ``total``."""
+    """A hard energy budget, a linear constraint on powers:
+    ``sum_l costs[l] P_l + sum_a activity[a] E||z_a||^2 <= total`` over
+    ``links`` (cost weight 1 unless ``costs`` says otherwise), and every
+    link named in ``caps`` sends at most its cap on its own."""
 
     name: str
     links: tuple  # resolved link ids
     total: float
     selector: str = ""  # how the spec named the group, for reports
+    costs: Mapping[str, float] = field(default_factory=dict)  # link id -> cost weight (default 1)
+    caps: Mapping[str, float] = field(default_factory=dict)  # link id -> most power it may send
+    activity: Mapping[str, float] = field(default_factory=dict)  # area -> weight of its activity
+
+    def weight(self, link_id: str) -> float:
+        """The cost weight of one of the budget's links."""
+        return float(self.costs.get(link_id, 1.0))
 
 
 @dataclass(frozen=True)

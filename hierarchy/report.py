@@ -213,21 +213,26 @@ def report_html(data, spec=None) -> str:
                  + _legend("links", link_cols))
     parts.append(_physical(data))
     if budgets:
-        cols = ["budget", "total", "used", "use", "shadow price", "met"]
+        from .results import budget_terms
+
+        cols = ["budget", "total", "used", "use", "shadow price", "met", "terms"]
         rows = [[b, _num(r.get("total")), _num(r.get("used")),
                  f"{100 * r['used'] / r['total']:.2f}%" if r.get("total") and r.get("used") is not None else "-",
-                 _num(r.get("shadow_price")), "yes" if r.get("met") else "NO"] for b, r in budgets.items()]
+                 _num(r.get("shadow_price")), "yes" if r.get("met") else "NO", budget_terms(r)]
+                for b, r in budgets.items()]
         parts.append("<h2>Budgets</h2>" + _table(cols, rows) + _legend("budgets", cols))
 
     silent = {lid: row for lid, row in data["links"].items() if row.get("silent")}
     parts.append("<h2>Silent links</h2>")
-    groups = (("not worth sending", "Checked at this design and not worth sending:"),
+    groups = (("switched off", "Switched off by a zero budget:"),
+              ("not worth sending", "Checked at this design and not worth sending:"),
               ("untested", "Silent, but not checked at this design:"),
               (None, "Silent:"))
     for verdict, head in groups:
         rows = [(lid, row) for lid, row in silent.items()
                 if row.get("silent_verdict") == verdict
-                or verdict is None and row.get("silent_verdict") not in ("not worth sending", "untested")]
+                or verdict is None and row.get("silent_verdict") not in ("switched off", "not worth sending",
+                                                                         "untested")]
         if rows:
             parts.append(f"<p>{_e(head)}</p><ul>" + "".join(
                 f"<li><b>{_e(lid)}</b>: {_e(row.get('silent_reason') or 'no reason recorded')}</li>"

@@ -146,7 +146,9 @@ def result_to_dict(result) -> dict:
         },
         "budgets": {
             name: {"total": b.total, "used": b.used, "shadow_price": b.shadow_price,
-                   "links": list(b.links), "met": b.met}
+                   "links": list(b.links), "met": b.met,
+                   "costs": {lid: w for lid, w in b.costs.items() if w != 1},
+                   "activity": dict(b.activity), "cap_of": b.cap_of}
             for name, b in result.budgets.items()
         },
     })
@@ -157,7 +159,7 @@ def result_to_dict(result) -> dict:
         row["silent_verdict"] = info.get("verdict")
         row["silent_stream"] = info.get("stream")
         row["share_of_budget"] = {
-            name: (result.scores.links[lid].power / b.total if b.total > 0 else None)
+            name: (b.costs.get(lid, 1.0) * result.scores.links[lid].power / b.total if b.total > 0 else None)
             for name, b in result.budgets.items() if lid in b.links
         }
     if result.reference is not None:
@@ -245,10 +247,14 @@ def scores_text(spec, scores, gains=None, result=None) -> str:
     if spec.units is not None:
         out.append(physical_text(spec, scores))
     if spec.budgets and result is None:
+        from .allocation import constraints
+
         rows = []
-        for b in spec.budgets:
-            used = sum(scores.links[lid].power for lid in b.links)
-            rows.append([b.name, fmt(b.total), fmt(used), "yes" if used <= b.total * (1 + 1e-6) else "NO (over)"])
+        cons = constraints(spec)
+        spent = cons.used([scores.links[l.id].power for l in spec.links],
+                          [scores.areas[a.name].activity for a in spec.areas])
+        for name, total, used in zip(cons.names, cons.totals, spent):
+            rows.append([name, fmt(total), fmt(used), "yes" if used <= total * (1 + 1e-6) else "NO (over)"])
         out.append(table(["budget", "total", "used by these gains", "within"], rows))
     out.append(
         f"objective {fmt(scores.objective, 6)} = weighted error {fmt(scores.weighted_error, 6)}"
@@ -260,6 +266,16 @@ def scores_text(spec, scores, gains=None, result=None) -> str:
     return "\n\n".join(out)
 
 
+def budget_terms(row: dict) -> str:
+    """What a budget row of a result counts beyond plain link powers: cost
+    weights, areas' activity, or the link it caps."""
+    if row.get("cap_of"):
+        return f"cap on {row['cap_of']}"
+    parts = [f"{lid} x{w:g}" for lid, w in (row.get("costs") or {}).items() if w != 1]
+    parts += [f"activity {a}" + (f" x{w:g}" if w != 1 else "") for a, w in (row.get("activity") or {}).items()]
+    return ", ".join(parts) or "powers"
+
+
 def result_text(result) -> str:
     """The full report of a design."""
     spec = result.spec
@@ -267,9 +283,12 @@ def result_text(result) -> str:
     parts.append(scores_text(spec, result.scores, result.gains, result))
     if result.budgets:
         rows = [[b.name, fmt(b.total), fmt(b.used), f"{100 * b.used / b.total:.2f}%" if b.total else "-",
-                 fmt(b.shadow_price), "yes" if b.met else "NO"] for b in result.budgets.values()]
-        parts.append(table(["budget", "total", "used", "use", "shadow price", "met"], rows))
-    for verdict, head in (("not worth sending", "not worth sending (checked at this design):"),
+                 fmt(b.shadow_price), "yes" if b.met else "NO",
+                 budget_terms({"cap_of": b.cap_of, "costs": b.costs, "activity": b.activity})]
+                for b in result.budgets.values()]
+        parts.append(table(["budget", "total", "used", "use", "shadow price", "met", "terms"], rows))
+    for verdict, head in (("switched off", "switched off by a zero budget:"),
+                          ("not worth sending", "not worth sending (checked at this design):"),
                           ("untested", "silent, but not checked at this design:")):
         rows = [f"  {lid}: {info['reason']}" for lid, info in result.silent.items() if info.get("verdict") == verdict]
         if rows:
@@ -356,7 +375,10 @@ EXPLANATIONS = (
                                "numbers and their sources are in hierarchy/units.py and docs/spec.md"),
     ("budgets", "budget", "the budget group's name"),
     ("budgets", "total", "the most power the group's links may send together"),
-    ("budgets", "used", "the power they send at this design"),
+    ("budgets", "used", "what they spend at this design: each link's power times its cost weight, plus the "
+                        "weighted activity of the budget's areas"),
+    ("budgets", "terms", "what the budget counts beyond plain powers: cost weights other than 1, areas' "
+                         "activity, or (a cap row) the one link it caps"),
     ("budgets", "use", "used as a percentage of total"),
     ("budgets", "shadow price", "how much the objective would fall per unit of extra budget (the Lagrange "
                                 "multiplier); 0 when the budget does not bind"),

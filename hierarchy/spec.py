@@ -794,6 +794,30 @@ class _Selector(_Kind):
                 fix="for a single link write a list: [A->B]")
 
 
+@dataclass(frozen=True)
+class _LinkNumbers(_Kind):
+    """A mapping from link ids (``FROM->TO``) to numbers of at least
+    ``minimum``; returns ``(id, number, position)`` triples."""
+
+    minimum: float = 0.0
+
+    def schema(self):
+        return {"type": "object", "propertyNames": {"type": "string", "pattern": "->"},
+                "additionalProperties": _Real(self.minimum).schema(), "minProperties": 1}
+
+    def check(self, at):
+        if not isinstance(at.value, dict) or not at.value:
+            at.fail(f"expected a mapping from link ids to numbers, got {_describe(at.value)}",
+                    fix="write `{FROM->TO: number}`")
+        out = []
+        for key in at.value:
+            child = _child(at, key)
+            if not isinstance(key, str) or "->" not in key:
+                child.fail(f"`{key}` is not a link id", fix="write link ids as FROM->TO")
+            out.append((key, _Real(self.minimum).check(child), child))
+        return out
+
+
 # --------------------------------------------------------------------------
 # Key tables: one per section (the single source of truth)
 # --------------------------------------------------------------------------
@@ -920,8 +944,19 @@ _BUDGET_KEYS = (
     _Key("links", _Selector(),
          "`all`, a list of link ids (`A->B`), {from: NODE} or {to: NODE}",
          required=True, fix="add `links: all` or a list of link ids"),
-    _Key("total", _Real(0.0), "the most power the group may send in total",
+    _Key("total", _Real(0.0), "the most the group may spend in total (with "
+         "`each`: each of its parts); 0 switches its links off",
          required=True, fix="add `total: ...`"),
+    _Key("costs", _LinkNumbers(),
+         "link id -> what one unit of its power costs in this budget (a "
+         "long-range link costs more); links not named cost 1"),
+    _Key("caps", _LinkNumbers(),
+         "link id -> the most power that link may send on its own"),
+    _Key("activity", _MapOf(_Real(0.0), "weight"),
+         "area -> weight of its activity E||z||^2 in this budget"),
+    _Key("each", _Choice(("sender", "receiver")),
+         "one budget per sending (or receiving) node over its selected "
+         "links, named NAME[NODE], each with this total"),
 )
 
 _UNITS_KEYS = (
@@ -1433,7 +1468,7 @@ def _check_pin_kind(at: _At, kind: str) -> None:
                     f"or change the kind")
 
 
-def _parse_budgets(items: list, links: tuple, node_dims: dict) -> tuple:
+def _parse_budgets(items: list, links: tuple, node_dims: dict, area_names=()) -> tuple:
     budgets, seen = [], {}
     for item in items:
         f = _read_table(item, _BUDGET_KEYS)
@@ -1445,9 +1480,60 @@ def _parse_budgets(items: list, links: tuple, node_dims: dict) -> tuple:
         seen[name] = item.place
         ids, selector = _select_links(f.pos("links"), f.get("links"), links,
                                       node_dims)
-        budgets.append(Budget(name=name, links=ids, total=f.get("total"),
-                              selector=selector))
+        total = f.get("total")
+        costs = _link_numbers(f, "costs", ids)
+        caps = _link_numbers(f, "caps", ids)
+        activity = {}
+        if f.given("activity"):
+            for area, weight in f.get("activity"):
+                _known(_child(f.pos("activity"), area), area, tuple(area_names), "area")
+                activity[area] = weight
+            if total == 0 and any(activity.values()):
+                f.pos("activity").fail(
+                    "a budget of total 0 cannot include activity: an area's "
+                    "activity is never exactly zero while it works",
+                    fix="give the budget a positive total, or move the activity "
+                        "into its own budget")
+        if not f.given("each"):
+            budgets.append(Budget(name=name, links=ids, total=total,
+                                  selector=selector, costs=costs, caps=caps,
+                                  activity=activity))
+            continue
+        end = "source" if f.get("each") == "sender" else "target"
+        by_node = {}
+        for lid in ids:
+            link = next(l for l in links if l.id == lid)
+            by_node.setdefault(getattr(link, end), []).append(lid)
+        for node, part in by_node.items():
+            own = tuple(part)
+            budgets.append(Budget(
+                name=f"{name}[{node}]", links=own, total=total,
+                selector=f"{selector}, {f.get('each')} {node}",
+                costs={k: v for k, v in costs.items() if k in own},
+                caps={k: v for k, v in caps.items() if k in own},
+                activity={a: w for a, w in activity.items() if a == node}))
+    names = [b.name for b in budgets]
+    for b in budgets:
+        if names.count(b.name) > 1:
+            raise SpecError(f"two budgets are called `{b.name}`", place="budgets",
+                            fix="rename a budget so that `each` does not repeat "
+                                "another budget's name")
     return tuple(budgets)
+
+
+def _link_numbers(f, key: str, ids: tuple) -> dict:
+    """A budget's ``costs`` or ``caps``: every id must be one of its links."""
+    if not f.given(key):
+        return {}
+    out = {}
+    for lid, value, at in f.get(key):
+        if lid not in ids:
+            at.fail(f"the link {lid} is not in this budget",
+                    fix=f"name one of the budget's links ({', '.join(ids[:4])}"
+                        f"{', ...' if len(ids) > 4 else ''}) or add {lid} to "
+                        f"`links`")
+        out[lid] = value
+    return out
 
 
 def _select_links(at: _At, choice: tuple, links: tuple, node_dims: dict):
@@ -1486,7 +1572,10 @@ def _check_costs(drafts: list, links: tuple, budgets: tuple) -> None:
     budget_of = {}
     for budget in budgets:
         for link_id in budget.links:
-            budget_of.setdefault(link_id, budget.name)
+            # A link that costs nothing in its budget and has no cap there
+            # is not limited by it.
+            if budget.weight(link_id) > 0 or link_id in budget.caps:
+                budget_of.setdefault(link_id, budget.name)
     ids = {link.id: link for link in links}
     for draft, link in zip(drafts, links):
         if link.price > 0 or link.id in budget_of:
@@ -1578,7 +1667,7 @@ def _parse_document(root: _At, path) -> Spec:
     links = tuple(_link(d, drafts_by_id, node_dims, sensor_names)
                   for d in drafts)
     _check_delay_states(drafts, links)
-    budgets = _parse_budgets(top.get("budgets"), links, node_dims)
+    budgets = _parse_budgets(top.get("budgets"), links, node_dims, [a.name for a in areas])
     _check_costs(drafts, links, budgets)
     default_name = Path(path).stem if path else "unnamed"
     return Spec(name=top.get("name") or default_name, world=world,
