@@ -81,6 +81,20 @@ ENTRIES = [
           "compare specs/compare-deep.yaml specs/compare-shallow.yaml --budgets 0.02:5:13 --log "
           "--out {out}/compare-depth --no-progress",
           {"0.02:5:13": "0.02:5:3"}, ["compare-depth.json"]),
+    Entry("deep-delays", "A deep hierarchy whose long-range feedback takes three steps, in physical units.",
+          "A retina, an edge area and an object area; the object area's prediction back down (vermillion) "
+          "arrives 3 steps (30 ms) after it is sent, as its label says, the local hops in one. Each label also "
+          "gives the link's rate and power under the spec's neural units (2 bits per spike, the spike cost of "
+          "Attwell and Laughlin 2001); the title, all links together.",
+          "design specs/deep-delays.yaml --json {out}/deep-delays.json --plot {out}/deep-delays.png", {},
+          ["deep-delays.json"]),
+    Entry("compare-delays", "Pareto fronts: deep against shallow when long pathways are slow.",
+          "The deep hierarchy above against a shallow one in which the retina reports straight to the object "
+          "area over a 2-step pathway, with 3-step feedback. Under these delays the shallow circuit wins at "
+          "small budgets and the deep one at large budgets; the bottom panel's shading shows where each wins.",
+          "compare specs/deep-delays.yaml specs/shallow-delays.yaml --budgets 0.02:5:9 --log "
+          "--out {out}/compare-delays --no-progress",
+          {"0.02:5:9": "0.02:5:3"}, ["compare-delays.json"]),
 ]
 
 #: How close a fresh run's numbers must be to the committed ones. An optimum

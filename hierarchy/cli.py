@@ -123,18 +123,33 @@ def cmd_check(args) -> int:
                 what = f"tracks {'+'.join(d['tracks'])}, lag {d['lag']}" if d["tracks"] else "relay"
                 desc.append(f"{n} (area, {d['dim']}-dim, {what})")
         print(f"{label}: " + "; ".join(desc))
-    budgeted = {lid: b.name for b in spec.budgets for lid in b.links}
+    budgeted = {}
+    for b in spec.budgets:
+        for lid in b.links:
+            extra = [f"cost {b.weight(lid):g}"] if b.weight(lid) != 1 else []
+            extra += [f"cap {b.caps[lid]:g}"] if lid in b.caps else []
+            budgeted.setdefault(lid, []).append(b.name + (f" ({', '.join(extra)})" if extra else ""))
     for l in spec.links:
         pins = f", pinned {'+'.join(sorted(l.pin))}" if l.pin else ""
         cost = []
         if l.price:
             cost.append(f"price {l.price:g}")
         if l.id in budgeted:
-            cost.append(f"budget {budgeted[l.id]}")
+            cost.append(("budget " if len(budgeted[l.id]) == 1 else "budgets ") + ", ".join(budgeted[l.id]))
+        delay = f", delay {l.delay} steps" if l.delay > 1 else ""
         print(f"link {l.id}: {l.kind}, {l.dim}-dim, noise power {l.noise.trace():.4g}"
-              + (", " + ", ".join(cost) if cost else "") + pins)
+              + (", " + ", ".join(cost) if cost else "") + delay + pins)
     for b in spec.budgets:
-        print(f"budget {b.name}: total {b.total:g} over {len(b.links)} link(s)")
+        extra = [f"{len(b.costs)} cost weight(s)"] if b.costs else []
+        extra += [f"{len(b.caps)} cap(s)"] if b.caps else []
+        extra += ["activity of " + ", ".join(f"{a}" + (f" x{w:g}" if w != 1 else "") for a, w in b.activity.items())
+                  ] if b.activity else []
+        print(f"budget {b.name}: total {b.total:g} over {len(b.links)} link(s)"
+              + (", " + ", ".join(extra) if extra else "") + (" (switches them off)" if b.total == 0 else ""))
+    if spec.units is not None:
+        from .units import describe
+
+        print(f"units: {describe(spec.units)}")
     _print_warnings(c)
     return 0
 

@@ -1,7 +1,9 @@
 """Closed-loop matrices of a circuit for a given set of gains.
 
-Stack the state ``xi = [x(t), x(t-1), ..., x(t-L); z_1; ...; z_A]`` (the world
-augmented with delayed copies for lagged targets, then every area) and all
+Stack the state ``xi = [x(t), x(t-1), ..., x(t-L); z_1; ...; z_A; c]`` (the
+world augmented with delayed copies for lagged targets, every area, then the
+signals in flight on delayed links: a link of delay ``k`` keeps ``k - 1``
+copies of its channel output, and its receiver reads the oldest) and all
 noises ``nu = [w; v_sensors...; eta_links...]`` with covariance ``Omega``. With
 ``q = [xi; nu]`` every quantity of one time step is linear in ``q``:
 
@@ -28,7 +30,11 @@ noises) and the node signals ``u = [y_sensors; z]``,
 then what arrives is ``R = (I - Pm)(Gs U + E)`` (``E`` picks the link
 noises; ``Pm`` maps prediction rows into residual rows only, so ``Pm^2 = 0``
 and ``(I + Pm)^-1 = I - Pm``), what is sent is ``R - E``, and the areas move
-on as ``z(t+1) = Mz z + Km R q``. Every piece is a sum of small blocks, so
+on as ``z(t+1) = Mz z + Km R q``. On a delayed link what arrives is a state
+(its oldest copy), so its ``K`` and a residual's ``P`` on a delayed
+prediction act on ``xi`` directly (``Kd``, ``Pd``); the copies' own rows are
+fixed entries (``Km`` feeds the first copy, shifts move the rest), and the
+"areas" block ``z`` of the compact form includes the copies. Every piece is a sum of small blocks, so
 the link count enters only through sparse products and index gathers, never
 through dense ``(nq x nq)`` matrices.
 """
@@ -55,6 +61,15 @@ class LinkLayout:
     target_is_area: bool
     noise: slice  # eta_l inside q
     pair: int | None  # index of the prediction a residual subtracts
+    delay: int = 1
+    copies: slice | None = None  # the delay - 1 copies of what was received, inside xi
+
+    @property
+    def last_copy(self) -> slice | None:
+        """Where the copy that arrives now sits in ``xi`` (``None`` without a delay)."""
+        if self.copies is None:
+            return None
+        return slice(self.copies.stop - self.dim, self.copies.stop)
 
 
 class Layout:
@@ -83,6 +98,14 @@ class Layout:
         for a in spec.areas:
             self.area_slice[a.name] = slice(pos, pos + a.dim)
             pos += a.dim
+        self.n_area_states = pos - self.nx
+        # A link of delay k keeps k - 1 copies of what it received: copy j
+        # holds the channel output of t - j (the noise entered once, at t - j).
+        copies = {}
+        for l in spec.links:
+            if l.delay > 1:
+                copies[l.id] = slice(pos, pos + (l.delay - 1) * l.dim)
+                pos += (l.delay - 1) * l.dim
         self.nxi = pos
         self.nz = self.nxi - self.nx
         # noises
@@ -106,7 +129,9 @@ class Layout:
                 id=l.id, kind=l.kind, index=i, dim=l.dim, source=l.source, target=l.target,
                 target_is_area=not spec.is_sensor(l.target), noise=link_pos[l.id],
                 pair=None if pair is None else index[pair.id],
+                delay=l.delay, copies=copies.get(l.id),
             ))
+        self.delayed = [ll for ll in self.links if ll.delay > 1]
         self.link_index = index
         self.shapes = gain_shapes(spec)
 
@@ -207,6 +232,12 @@ class Layout:
         E[:, link.noise] = np.eye(link.dim)
         return E
 
+    def copy_rows(self, link: LinkLayout) -> np.ndarray:
+        """Rows over ``q`` of the copy that arrives now at a delayed link's receiver."""
+        Z = np.zeros((link.dim, self.nq))
+        Z[:, link.last_copy] = np.eye(link.dim)
+        return Z
+
 
 @dataclass
 class ClosedLoop:
@@ -221,7 +252,10 @@ class ClosedLoop:
     sent : list of ndarray
         ``Hq_l``: the signal link ``l`` sends, as rows over ``q = [xi; nu]``.
     received : list of ndarray
-        ``Rq_l``: what arrives at the link's receiver.
+        ``Rq_l``: the channel's output now, ``Hq_l`` plus the link noise.
+    arrived : list of ndarray
+        What the link's receiver uses now: ``received`` for a link of delay
+        1, else the oldest copy of it held in the state.
     """
 
     layout: Layout
@@ -230,6 +264,7 @@ class ClosedLoop:
     Psi: np.ndarray
     sent: list
     received: list
+    arrived: list
 
     @property
     def Omega(self):
@@ -259,21 +294,24 @@ def assemble(layout: Layout, gains: Gains) -> ClosedLoop:
     nq, nxi, nx = layout.nq, layout.nxi, layout.nx
     sent = [None] * len(layout.links)
     received = [None] * len(layout.links)
+    arrived = [None] * len(layout.links)
+
+    def send(ll, H):
+        sent[ll.index] = H
+        received[ll.index] = H + layout.noise_rows(ll)
+        arrived[ll.index] = received[ll.index] if ll.copies is None else layout.copy_rows(ll)
+
     # Predictions first: they depend only on the sender's state.
     for ll in layout.links:
         if ll.kind == PREDICTION:
-            G = gains.links[ll.id]["G"]
-            H = G @ layout.output[ll.source]
-            sent[ll.index] = H
-            received[ll.index] = H + layout.noise_rows(ll)
+            send(ll, gains.links[ll.id]["G"] @ layout.output[ll.source])
     for ll in layout.links:
         if ll.kind != PREDICTION:
             blocks = gains.links[ll.id]
             H = blocks["S"] @ layout.output[ll.source]
             if ll.pair is not None:
-                H = H - blocks["P"] @ received[ll.pair]
-            sent[ll.index] = H
-            received[ll.index] = H + layout.noise_rows(ll)
+                H = H - blocks["P"] @ arrived[ll.pair]
+            send(ll, H)
     Psi = np.zeros((nxi, nq))
     Psi[:nx, :nx] = layout.A_aug
     Psi[:layout.n, layout.w_slice] = np.eye(layout.n)
@@ -282,8 +320,12 @@ def assemble(layout: Layout, gains: Gains) -> ClosedLoop:
         Psi[sl, sl] = gains.areas[a.name]["M"]
     for ll in layout.links:
         if ll.target_is_area:
-            Psi[layout.area_slice[ll.target]] += gains.links[ll.id]["K"] @ received[ll.index]
-    return ClosedLoop(layout, Psi[:, :nxi], Psi[:, nxi:], Psi, sent, received)
+            Psi[layout.area_slice[ll.target]] += gains.links[ll.id]["K"] @ arrived[ll.index]
+    for ll in layout.delayed:  # copies move one step along: the first takes what arrives now
+        c0, d = ll.copies.start, ll.dim
+        Psi[c0:c0 + d] = received[ll.index]
+        Psi[c0 + d:ll.copies.stop, c0:ll.copies.stop - d] = np.eye(ll.copies.stop - c0 - d)
+    return ClosedLoop(layout, Psi[:, :nxi], Psi[:, nxi:], Psi, sent, received, arrived)
 
 
 # ---------------------------------------------------------------------------
@@ -414,7 +456,11 @@ class Structure:
 
         slot = layout.gain_slots
         self.M = Entries.of((zcol[a.name], zcol[a.name], *slot[(a.name, "M")]) for a in spec.areas)
-        gz, gv, pm, km = [], [], [], []
+        # Delayed links: what arrives is a state (the oldest copy), so their
+        # K is a gain from a state (like M) and a residual's P on a delayed
+        # prediction is a sender gain on a state (like G, with a minus sign).
+        arrive = {ll.id: ll.last_copy.start - nx for ll in layout.delayed}
+        gz, gv, pm, km, kd, pd = [], [], [], [], [], []
         for ll in layout.links:
             sender = "G" if ll.kind == PREDICTION else "S"
             if ll.source in vcol:
@@ -422,10 +468,34 @@ class Structure:
             else:
                 gz.append((rows[ll.id], zcol[ll.source], *slot[(ll.id, sender)]))
             if ll.pair is not None:
-                pm.append((rows[ll.id], rows[layout.links[ll.pair].id], *slot[(ll.id, "P")]))
+                pair = layout.links[ll.pair]
+                if pair.copies is None:
+                    pm.append((rows[ll.id], rows[pair.id], *slot[(ll.id, "P")]))
+                else:
+                    pd.append((rows[ll.id], arrive[pair.id], *slot[(ll.id, "P")]))
             if ll.target_is_area:
-                km.append((zcol[ll.target], rows[ll.id], *slot[(ll.id, "K")]))
-        self.Gz, self.Gv, self.P, self.K = (Entries.of(b) for b in (gz, gv, pm, km))
+                if ll.copies is None:
+                    km.append((zcol[ll.target], rows[ll.id], *slot[(ll.id, "K")]))
+                else:
+                    kd.append((zcol[ll.target], arrive[ll.id], *slot[(ll.id, "K")]))
+        self.Gz, self.Gv, self.P = (Entries.of(b) for b in (gz, gv, pm))
+        self.Kd, self.Pd = Entries.of(kd), Entries.of(pd)
+        # The first copy of a delayed link takes what its channel puts out:
+        # fixed entries 1 in Km, read from the slot just past the gains.
+        self.one = layout.n_gains
+        self.delays = bool(layout.delayed)  # without any, every delay step below is skipped
+        feed = [(ll.copies.start - nx + np.arange(ll.dim), rows[ll.id] + np.arange(ll.dim))
+                for ll in layout.delayed]
+        K = Entries.of(km)
+        self.K = Entries(np.concatenate([K.rows] + [r for r, _ in feed]).astype(int),
+                         np.concatenate([K.cols] + [c for _, c in feed]).astype(int),
+                         np.concatenate([K.at] + [np.full(len(r), self.one) for r, _ in feed]).astype(int))
+        # ... and each later copy the one before it (fixed entries 1 in Phi_z).
+        shift = [(ll.copies.start - nx + ll.dim + np.arange(ll.copies.stop - ll.copies.start - ll.dim),
+                  ll.copies.start - nx + np.arange(ll.copies.stop - ll.copies.start - ll.dim))
+                 for ll in layout.delayed]
+        self.shift = (np.concatenate([np.zeros(0, int)] + [r for r, _ in shift]).astype(int),
+                      np.concatenate([np.zeros(0, int)] + [c for _, c in shift]).astype(int))
         # Links grouped by signal size, with their rows (for batched per-link
         # covariances), and where each residual's P block starts among Pm's entries.
         by_dim = {}
@@ -433,8 +503,10 @@ class Structure:
             by_dim.setdefault(ll.dim, []).append(ll.index)
         self.link_groups = [(idx, self.link_start[idx][:, None] + np.arange(d)) for d, idx in by_dim.items()]
         starts = np.cumsum([0] + [h * w for *_, (h, w) in pm])
+        undelayed_pairs = [ll for ll in layout.links
+                           if ll.pair is not None and layout.links[ll.pair].copies is None]
         self.p_blocks = {ll.index: (int(e0), (ll.dim, layout.links[ll.pair].dim))
-                         for ll, e0 in zip([ll for ll in layout.links if ll.pair is not None], starts)}
+                         for ll, e0 in zip(undelayed_pairs, starts)}
         self.Pm = SparseProduct(self.P.rows, self.P.cols, (self.m, self.m))
         self.PmT = SparseProduct(self.P.cols, self.P.rows, (self.m, self.m))
         self.Km = SparseProduct(self.K.rows, self.K.cols, (self.nz, self.m))
@@ -452,9 +524,7 @@ class Structure:
         # (Pm Omega_eta) at each entry of Pm: entry (i, j) of P_l sums P_l[i, c] N_p[c, j]
         # over the paired prediction's noise N_p (Omega_eta is block diagonal).
         dst, src, val, base = [], [], [], 0
-        for ll in layout.links:
-            if ll.pair is None:
-                continue
+        for ll in undelayed_pairs:  # a delayed prediction's noise is in the state
             N = spec.links[ll.pair].noise
             h, w = ll.dim, N.shape[0]
             i, j, c = (a.ravel() for a in np.meshgrid(np.arange(h), np.arange(w), np.arange(w), indexing="ij"))
@@ -485,10 +555,12 @@ class Structure:
         self.target_start = np.concatenate([[0], np.cumsum(k)[:-1]]).astype(int) if k else np.zeros(0, int)
         self.w_rows = np.repeat([a.weight for a in self.targets], k)
         W = F.T @ (self.w_rows[:, None] * F)
-        kappa = np.concatenate([np.full(a.dim, a.activity_price) for a in spec.areas])
+        kappa = np.concatenate([np.full(a.dim, a.activity_price) for a in spec.areas]
+                               + [np.zeros(self.nz - layout.n_area_states)])
         W[nx:, nx:] += np.diag(kappa)
         self.Wz_fixed = W[nx:, :]
         self.area_start = np.array([zcol[a.name] for a in spec.areas], dtype=int)
+        self.n_area_states = layout.n_area_states
         self.kappa = np.array([a.activity_price for a in spec.areas])
         # The world's stationary part, solved by hierarchy.evaluate on first use.
         self.world = None
@@ -496,15 +568,22 @@ class Structure:
     def parts(self, g: np.ndarray) -> Parts:
         """The compact closed loop for the flat gain vector ``g``."""
         n, nx = self.n, self.nx
+        if self.delays:
+            g = np.append(g, 1.0)  # slot `one`: the fixed entries of delayed links
         Gv = np.zeros((self.m, self.nv))
         Gv[self.Gv.rows, self.Gv.cols] = g[self.Gv.at]
         B = np.zeros((self.m, self.nxi))
         B[:, :n] = Gv @ self.C_all
         B[self.Gz.rows, nx + self.Gz.cols] = g[self.Gz.at]
+        if self.delays:
+            B[self.Pd.rows, nx + self.Pd.cols] = -g[self.Pd.at]
         p, k = g[self.P.at], g[self.K.at]
         H = B - self.Pm.matmul(p, B)
         Phi_z = self.Km.matmul(k, H)
         Phi_z[self.M.rows, nx + self.M.cols] += g[self.M.at]
+        if self.delays:
+            Phi_z[self.Kd.rows, nx + self.Kd.cols] += g[self.Kd.at]
+            Phi_z[self.shift[0], nx + self.shift[1]] += 1.0
         Q2 = np.zeros((self.nz, self.m))
         Q2[self.K.rows, self.K.cols] = k
         Q2 -= self.PmT.matmul(p, Q2.T).T

@@ -586,7 +586,7 @@ def flat_cost_and_gradient(layout: Layout, g: np.ndarray, prices=None):
     p, Sigma, nx, n = sol.parts, sol.Sigma, st.nx, st.n
     lam = prices[st.row_link]
     err = _error_rows(st, sol)
-    activity = np.add.reduceat(np.diag(Sigma)[nx:], st.area_start)
+    activity = np.add.reduceat(np.diag(Sigma)[nx:nx + st.n_area_states], st.area_start)
     J = float(st.w_rows @ err + st.kappa @ activity + lam @ sol.row_power)
 
     # Adjoint on the area rows. W's area rows: errors and activity (fixed)
@@ -604,8 +604,11 @@ def flat_cost_and_gradient(layout: Layout, g: np.ndarray, prices=None):
     Yv = 2.0 * Azz @ (p.Q1 @ st.Omega_v)
     Ye = 2.0 * Azz @ p.Q2_omega
 
-    dg = np.zeros_like(g)
+    # With delayed links, one more slot takes (and drops) the derivatives of their fixed entries.
+    dg = np.zeros(len(g) + st.delays)
     dg[st.M.at] = Yx[st.M.rows, nx + st.M.cols]
+    if st.delays:
+        dg[st.Kd.at] = Yx[st.Kd.rows, nx + st.Kd.cols]
     K = st.K
     if len(K.at):
         PY = st.Pm.matmul(p.p, Ye.T)  # (Ye Pm')': the -Pm part of what arrives, over link noises
@@ -622,6 +625,8 @@ def flat_cost_and_gradient(layout: Layout, g: np.ndarray, prices=None):
     gB = gR - st.PmT.matmul(p.p, gR)
     gBv = gRv - st.PmT.matmul(p.p, gRv)
     dg[st.Gz.at] = gB[st.Gz.rows, nx + st.Gz.cols]
+    if st.delays:
+        dg[st.Pd.at] = -gB[st.Pd.rows, nx + st.Pd.cols]
     Gv = st.Gv
     dg[Gv.at] = _row_dots(gB[:, :n], Gv.rows, st.C_all, Gv.cols) + gBv[Gv.rows, Gv.cols]
-    return J, dg, radius
+    return J, dg[:len(g)], radius

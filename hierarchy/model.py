@@ -143,6 +143,8 @@ class Link:
     ``kind`` is ``"prediction"`` or ``"residual"``; ``dim`` the size of the
     signal sent; ``noise`` its channel-noise covariance (dim x dim); ``pin``
     may hold ``G``, ``K`` (prediction) or ``S``, ``P``, ``K`` (residual).
+    ``delay`` is the conduction delay in whole steps (1 or more): the
+    receiver's update of ``t+1`` uses what was sent at ``t - delay + 1``.
     """
 
     source: str
@@ -152,6 +154,7 @@ class Link:
     noise: np.ndarray
     price: float = 0.0
     pin: Mapping[str, np.ndarray] = field(default_factory=dict)
+    delay: int = 1
 
     @property
     def id(self) -> str:
@@ -160,12 +163,22 @@ class Link:
 
 @dataclass(frozen=True)
 class Budget:
-    """A hard energy budget: total power of ``links`` at most ``total``."""
+    """A hard energy budget, a linear constraint on powers:
+    ``sum_l costs[l] P_l + sum_a activity[a] E||z_a||^2 <= total`` over
+    ``links`` (cost weight 1 unless ``costs`` says otherwise), and every
+    link named in ``caps`` sends at most its cap on its own."""
 
     name: str
     links: tuple  # resolved link ids
     total: float
     selector: str = ""  # how the spec named the group, for reports
+    costs: Mapping[str, float] = field(default_factory=dict)  # link id -> cost weight (default 1)
+    caps: Mapping[str, float] = field(default_factory=dict)  # link id -> most power it may send
+    activity: Mapping[str, float] = field(default_factory=dict)  # area -> weight of its activity
+
+    def weight(self, link_id: str) -> float:
+        """The cost weight of one of the budget's links."""
+        return float(self.costs.get(link_id, 1.0))
 
 
 @dataclass(frozen=True)
@@ -181,6 +194,7 @@ class Spec:
     version: int = 1
     warnings: tuple = ()
     path: str | None = None
+    units: object = None  # hierarchy.units.Units, or None: the model's own units only
 
     def sensor(self, name):
         return next(s for s in self.sensors if s.name == name)

@@ -36,7 +36,8 @@ class Problem:
     ----------
     spec : Spec
     prices : array_like, optional
-        Per-link prices (default: the spec's). The budget form changes these.
+        Per-link prices (default: the spec's). The budget form changes these
+        (``prices`` is a plain attribute: the prices at the current multipliers).
 
     Examples
     --------
@@ -90,7 +91,6 @@ class Problem:
                     for a in spec.areas if a.has_target)
         self.reference = prior if prior > 0 else 1.0
         self.evaluations = 0
-        self.penalty = None  # a BudgetPenalty in the budget form
 
     def _node_scales(self) -> dict:
         world, cov = self.spec.world, self.world_cov
@@ -160,27 +160,11 @@ class Problem:
         return theta
 
     def value_and_grad(self, theta: np.ndarray):
-        """Relative objective ``J / reference`` (plus the budget penalty, if
-        one is set) and its gradient in solver units (``inf, None`` when the
-        closed loop is unstable)."""
+        """Relative objective ``J / reference`` and its gradient in solver
+        units (``inf, None`` when the closed loop is unstable)."""
         self.evaluations += 1
         EVALUATIONS[0] += 1
-        if self.penalty is None:
-            J, grad, _ = flat_cost_and_gradient(self.layout, self.flat(theta), self.prices)
-        else:
-            # The penalty's gradient is a priced gradient at prices set by this
-            # design's own powers; the value then swaps the linear price terms
-            # for the penalty's.
-            seen = []
-
-            def prices(powers):
-                seen.append(powers)
-                return self.prices + self.penalty.prices(powers)
-
-            J, grad, _ = flat_cost_and_gradient(self.layout, self.flat(theta), prices)
-            if grad is not None:
-                powers = seen[0]
-                J += self.penalty.value(powers) - self.penalty.prices(powers) @ powers
+        J, grad, _ = flat_cost_and_gradient(self.layout, self.flat(theta), self.prices)
         if grad is None:
             return float("inf"), None
         return J / self.reference, self.free_factor * grad[self.free_at] / self.reference
@@ -260,50 +244,6 @@ class Problem:
                 return theta
             theta *= 0.7
         return theta
-
-
-class BudgetPenalty:
-    """Augmented-Lagrangian term of the budget form (Nocedal & Wright,
-    *Numerical Optimization*, 2nd ed., section 17.4, inequality form):
-    ``sum_g [max(0, mu_g + rho_g c_g)^2 - mu_g^2] / (2 rho_g)`` with ``c_g``
-    the power of budget group ``g`` minus its total.
-
-    Its gradient is the gradient of the link powers priced at
-    ``max(0, mu_g + rho_g c_g)`` per group, so the exact evaluation computes
-    it at no extra cost.
-
-    Parameters
-    ----------
-    member : ndarray
-        ``(groups x links)``, 1 where a link belongs to a group.
-    totals, mu, rho : ndarray
-        Per group: the budget, its multiplier and its penalty weight.
-
-    Examples
-    --------
-    >>> pen = BudgetPenalty(np.ones((1, 2)), np.array([1.0]), np.array([0.5]), np.array([10.0]))
-    >>> pen.prices(np.array([0.25, 0.25]))
-    array([0., 0.])
-    >>> pen.prices(np.array([1.0, 0.5]))
-    array([5.5, 5.5])
-    """
-
-    def __init__(self, member, totals, mu, rho):
-        self.member = np.asarray(member, dtype=float)
-        self.totals = np.asarray(totals, dtype=float)
-        self.mu = np.asarray(mu, dtype=float)
-        self.rho = np.asarray(rho, dtype=float)
-
-    def weights(self, powers: np.ndarray) -> np.ndarray:
-        """``max(0, mu + rho c)`` per group: the next multipliers."""
-        return np.maximum(0.0, self.mu + self.rho * (self.member @ powers - self.totals))
-
-    def prices(self, powers: np.ndarray) -> np.ndarray:
-        """The per-link prices whose priced gradient is the penalty's gradient."""
-        return self.member.T @ self.weights(powers)
-
-    def value(self, powers: np.ndarray) -> float:
-        return float(np.sum((self.weights(powers) ** 2 - self.mu ** 2) / (2.0 * self.rho)))
 
 
 def _eye(shape) -> np.ndarray:

@@ -168,6 +168,10 @@ def _check_result(data, place) -> None:
             raise InputError(f"link '{lid}' has no finite power", place=f"{place}: links.{lid}.power", fix=fix)
         for key in ("snr", "bits"):
             _optional_number(row.get(key), f"{place}: links.{lid}.{key}", fix)
+        delay = row.get("delay", 1)
+        if not isinstance(delay, int) or isinstance(delay, bool) or delay < 1:
+            raise InputError(f"link '{lid}' has a delay that is not a whole number of steps (1 or more)",
+                             place=f"{place}: links.{lid}.delay", fix=fix)
         if not isinstance(row.get("share_of_budget") or {}, dict):
             raise InputError("the shares of budget are not an object", place=f"{place}: links.{lid}", fix=fix)
         for b, share in (row.get("share_of_budget") or {}).items():
@@ -267,13 +271,48 @@ def _num(x, digits=3) -> str:
     return f"{x:.{max(digits - 1, 1)}e}".replace("e-0", "e-").replace("e+0", "e")
 
 
-def _link_label(row, width_by) -> str:
-    lines = [f"P {_num(row['power'])}  SNR {_num(row.get('snr'))}", f"{_num(row.get('bits'))} bit/step"]
+def _si(value, unit) -> str:
+    """``8.2 nW``: a physical number with an SI prefix."""
+    if value is None:
+        return f"\u221e {unit}"
+    value = float(value)
+    if value == 0:
+        return f"0 {unit}"
+    for factor, prefix in ((1e9, "G"), (1e6, "M"), (1e3, "k"), (1.0, ""), (1e-3, "m"), (1e-6, "\u00b5"),
+                           (1e-9, "n"), (1e-12, "p"), (1e-15, "f")):
+        if abs(value) >= factor:
+            return f"{value / factor:.3g} {prefix}{unit}"
+    return f"{value:.2e} {unit}"
+
+
+def _physical_text(row, units) -> str:
+    """``120 spike/s, 8.2 nW`` for a result with physical units."""
+    phys = row.get("physical") if isinstance(row.get("physical"), dict) else None
+    if not isinstance(units, dict) or phys is None:
+        return ""
+    rate, watts = phys.get("events_per_second"), phys.get("watts")
+    if not all(v is None or isinstance(v, (int, float)) and not isinstance(v, bool) for v in (rate, watts)):
+        return ""
+    return f"{_num(rate)} {units.get('event') or 'event'}/s, {_si(watts, 'W')}"
+
+
+def _link_label(row, width_by, units=None) -> str:
+    lines = [f"P {_num(row['power'])}  SNR {_num(row.get('snr'))}",
+             f"{_num(row.get('bits'))} bit/step" + _delay_text(row)]
+    physical = _physical_text(row, units)
+    if physical:
+        lines.append(physical)
     if width_by == "share":
         shares = row.get("share_of_budget") or {}
         lines += [", ".join(f"{100 * s:.0f}% of {b}" for b, s in shares.items() if s is not None)
                   or "in no budget"]
     return "\n".join(lines)
+
+
+def _delay_text(row) -> str:
+    """``, delay 3`` for a link that takes 3 steps; nothing for one step."""
+    delay = row.get("delay") or 1
+    return f", delay {delay}" if delay > 1 else ""
 
 
 def _node_label(name, role, area) -> str:
@@ -303,6 +342,13 @@ def _title(data) -> str:
                      f"shadow price {_num(row.get('shadow_price'))}")
     if len(budgets) > MAX_TITLE_BUDGETS:
         lines.append(f"and {len(budgets) - MAX_TITLE_BUDGETS} more budgets (see the result's tables)")
+    units, total = data.get("units"), data.get("physical_total")
+    if isinstance(units, dict) and isinstance(total, dict):
+        watts = total.get("watts")
+        if watts is None or isinstance(watts, (int, float)) and not isinstance(watts, bool):
+            step = units.get("step_seconds")
+            lines.append(f"all links: {_si(watts, 'W')}" + (f", 1 step = {_si(step, 's')}"
+                                                            if isinstance(step, (int, float)) else ""))
     return "\n".join(lines)
 
 
@@ -484,7 +530,7 @@ def _place_labels(ax, renderer, data, pos, arcs, width, width_by, font, taken):
         row = data["links"][lid]
         colour = PREDICTION_COLOUR if row["kind"] == PREDICTION else RESIDUAL_COLOUR
         u, v = lid.split("->")
-        text = ax.text(0, 0, _link_label(row, width_by), fontsize=font, color=colour, zorder=5,
+        text = ax.text(0, 0, _link_label(row, width_by, data.get("units")), fontsize=font, color=colour, zorder=5,
                        linespacing=1.15, ha="center", va="center",
                        bbox=dict(boxstyle="round,pad=0.15", facecolor="white", edgecolor="none", alpha=0.9))
         gap = (0.12 + width[lid] / 72 / 2) * font / _LINK_FONT
@@ -529,7 +575,8 @@ def _side_table(fig, rect, data, lids, font):
     lines = [f"{'link':<{name}}  {'P':>8}  {'SNR':>8}  bit/step"]
     for lid in shown:
         row = data["links"][lid]
-        lines.append(f"{lid:<{name}}  {_num(row['power']):>8}  {_num(row.get('snr')):>8}  {_num(row.get('bits'))}")
+        lines.append(f"{lid:<{name}}  {_num(row['power']):>8}  {_num(row.get('snr')):>8}  {_num(row.get('bits'))}"
+                     + _delay_text(row))
     if len(shown) < len(lids):
         lines.append(f"... and {len(lids) - len(shown)} more (see the result's tables)")
     ax.text(0, 1, "links not labelled on the drawing\n" + "\n".join(lines), transform=ax.transAxes, ha="left",

@@ -89,6 +89,34 @@ def _legend(table_name, columns) -> str:
     return f'<dl class="legend">{"".join(items)}</dl>'
 
 
+def _physical(data) -> str:
+    """The links in the spec's physical units, when the result carries them."""
+    units = data.get("units")
+    if not isinstance(units, dict):
+        return ""
+
+    def number(v):  # a result file edited by hand may hold anything here
+        return _num(v) if isinstance(v, (int, float)) and not isinstance(v, bool) else "-"
+
+    event = str(units.get("event") or "event")
+    cols = ["link", "power", "bits/step", "bits/s", f"{event}/s", "energy (W)"]
+    rows = []
+    for lid, row in data["links"].items():
+        phys = row.get("physical") if isinstance(row.get("physical"), dict) else {}
+        rows.append([lid, number(row.get("power")), number(row.get("bits"))]
+                    + [number(phys.get(k)) for k in ("bits_per_second", "events_per_second", "watts")])
+    total = data.get("physical_total") if isinstance(data.get("physical_total"), dict) else {}
+    rows.append(["all links", "", ""] + [number(total.get(k)) for k in ("bits_per_second", "events_per_second",
+                                                                         "watts")])
+    sources = "".join(f"<li>{_e(s)}</li>" for s in units.get("sources") or [] if isinstance(s, str))
+    return ("<h2>Physical units</h2>"
+            f"<p class=\"note\">{_e(units.get('assumes') or '')}. Prices and budgets stay in model units; "
+            "these columns convert the design's numbers, they do not change it.</p>"
+            + _table(cols, rows)
+            + _legend("physical", ["bits/s", "EVENT/s", "energy (W)"])
+            + (f"<p>Sources of the preset's numbers:</p><ul>{sources}</ul>" if sources else ""))
+
+
 def _picture(data, spec) -> str:
     from .plots import figure_bytes
     from .render import draw
@@ -167,12 +195,15 @@ def report_html(data, spec=None) -> str:
 
     budgets = data.get("budgets") or {}
     in_budget = {lid: b for b, row in budgets.items() for lid in row.get("links", [])}
-    link_cols = ["link", "kind", "power", "SNR", "bits/step", "price", "budget share", "through gain", "note"]
+    delays = any((row.get("delay") or 1) > 1 for row in data["links"].values())
+    link_cols = ["link", "kind"] + (["delay"] if delays else []) + [
+        "power", "SNR", "bits/step", "price", "budget share", "through gain", "note"]
     rows, classes = [], []
     for lid, row in sorted(data["links"].items(), key=lambda kv: -float(kv[1]["power"])):
         shares = row.get("share_of_budget") or {}
         price = _num(row.get("price")) if row.get("price") or lid not in in_budget else f"budget {in_budget[lid]}"
-        rows.append([lid, row["kind"], _num(row["power"]), _num(row.get("snr")), _num(row.get("bits")), price,
+        rows.append([lid, row["kind"]] + ([row.get("delay") or 1] if delays else []) + [
+                     _num(row["power"]), _num(row.get("snr")), _num(row.get("bits")), price,
                      " ".join(f"{b}:{100 * s:.1f}%" for b, s in shares.items() if s is not None) or "-",
                      _num(row.get("through_gain"), 3), "silent" if row.get("silent") else ""])
         classes.append("silent" if row.get("silent") else ("prediction" if row["kind"] == PREDICTION
@@ -180,22 +211,28 @@ def report_html(data, spec=None) -> str:
     parts.append("<h2>Links</h2><p class=\"note\">Strongest first; blue residuals, vermillion predictions, "
                  "grey silent links, as in the drawing.</p>" + _table(link_cols, rows, classes)
                  + _legend("links", link_cols))
+    parts.append(_physical(data))
     if budgets:
-        cols = ["budget", "total", "used", "use", "shadow price", "met"]
+        from .results import budget_terms
+
+        cols = ["budget", "total", "used", "use", "shadow price", "met", "terms"]
         rows = [[b, _num(r.get("total")), _num(r.get("used")),
                  f"{100 * r['used'] / r['total']:.2f}%" if r.get("total") and r.get("used") is not None else "-",
-                 _num(r.get("shadow_price")), "yes" if r.get("met") else "NO"] for b, r in budgets.items()]
+                 _num(r.get("shadow_price")), "yes" if r.get("met") else "NO", budget_terms(r)]
+                for b, r in budgets.items()]
         parts.append("<h2>Budgets</h2>" + _table(cols, rows) + _legend("budgets", cols))
 
     silent = {lid: row for lid, row in data["links"].items() if row.get("silent")}
     parts.append("<h2>Silent links</h2>")
-    groups = (("not worth sending", "Checked at this design and not worth sending:"),
+    groups = (("switched off", "Switched off by a zero budget:"),
+              ("not worth sending", "Checked at this design and not worth sending:"),
               ("untested", "Silent, but not checked at this design:"),
               (None, "Silent:"))
     for verdict, head in groups:
         rows = [(lid, row) for lid, row in silent.items()
                 if row.get("silent_verdict") == verdict
-                or verdict is None and row.get("silent_verdict") not in ("not worth sending", "untested")]
+                or verdict is None and row.get("silent_verdict") not in ("switched off", "not worth sending",
+                                                                         "untested")]
         if rows:
             parts.append(f"<p>{_e(head)}</p><ul>" + "".join(
                 f"<li><b>{_e(lid)}</b>: {_e(row.get('silent_reason') or 'no reason recorded')}</li>"

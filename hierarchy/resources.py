@@ -57,6 +57,7 @@ class Need:
 def _sizes(spec) -> tuple:
     lag = max((a.lag for a in spec.areas if a.has_target), default=0)
     nxi = spec.world.dim * (lag + 1) + sum(a.dim for a in spec.areas)
+    nxi += sum((l.delay - 1) * l.dim for l in spec.links)  # signals in flight on delayed links
     nq = nxi + spec.world.dim + sum(s.dim for s in spec.sensors) + sum(l.dim for l in spec.links)
     dim = {n.name: n.dim for n in (*spec.areas, *spec.sensors)}
     gains = sum(a.dim * a.dim for a in spec.areas)

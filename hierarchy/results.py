@@ -81,13 +81,48 @@ def scores_to_dict(spec, scores, gains=None) -> dict:
         link = spec.link(lid)
         # model.md: a link's power is pinned down only when it is priced or budgeted.
         row["identifiable"] = bool(link.price > 0 or lid in budgeted)
+        row["delay"] = link.delay
         if gains is not None:
             row["through_gain"] = through_gain(spec, gains, link)
+    if spec.units is not None:
+        _add_physical(d, spec.units)
     for name, row in d["areas"].items():
         row["relay"] = not spec.area(name).has_target
         # Where drawings place the area (spec `level:` or the default rule).
         row["level"] = level.get(name)
     return _clean(d)
+
+
+def _add_physical(d: dict, units) -> None:
+    """Physical rates beside the model's numbers: per link under
+    ``physical`` and their sums under ``physical_total`` (docs/spec.md, units)."""
+    from .units import describe, physical
+
+    d["units"] = {**units.to_dict(), "assumes": describe(units)}
+    total = {"bits_per_second": 0.0, "events_per_second": 0.0, "watts": 0.0}
+    for row in d["links"].values():
+        row["physical"] = physical(units, row["power"], row["bits"])
+        for key in total:
+            total[key] += row["physical"][key]
+    d["physical_total"] = total
+
+
+def physical_text(spec, scores) -> str:
+    """The physical-units table of a spec with a ``units:`` section."""
+    from .units import describe, physical
+
+    u = spec.units
+    rows = []
+    total = [0.0, 0.0, 0.0]
+    for l in spec.links:
+        s = scores.links[l.id]
+        r = physical(u, s.power, s.bits)
+        vals = [r["bits_per_second"], r["events_per_second"], r["watts"]]
+        total = [t + v for t, v in zip(total, vals)]
+        rows.append([l.id, fmt(s.power), fmt(s.bits)] + [fmt(v) for v in vals])
+    rows.append(["all links", "", ""] + [fmt(v) for v in total])
+    return (table(["link", "power", "bits/step", "bits/s", f"{u.event}/s", "energy (W)"], rows)
+            + f"\nphysical units: {describe(u)}")
 
 
 def result_to_dict(result) -> dict:
@@ -111,7 +146,9 @@ def result_to_dict(result) -> dict:
         },
         "budgets": {
             name: {"total": b.total, "used": b.used, "shadow_price": b.shadow_price,
-                   "links": list(b.links), "met": b.met}
+                   "links": list(b.links), "met": b.met,
+                   "costs": {lid: w for lid, w in b.costs.items() if w != 1},
+                   "activity": dict(b.activity), "cap_of": b.cap_of}
             for name, b in result.budgets.items()
         },
     })
@@ -122,7 +159,7 @@ def result_to_dict(result) -> dict:
         row["silent_verdict"] = info.get("verdict")
         row["silent_stream"] = info.get("stream")
         row["share_of_budget"] = {
-            name: (result.scores.links[lid].power / b.total if b.total > 0 else None)
+            name: (b.costs.get(lid, 1.0) * result.scores.links[lid].power / b.total if b.total > 0 else None)
             for name, b in result.budgets.items() if lid in b.links
         }
     if result.reference is not None:
@@ -189,12 +226,13 @@ def scores_text(spec, scores, gains=None, result=None) -> str:
                           fmt(s.error), fmt(s.relative), fmt(s.activity)])
     out.append(table(["area", "tracks", "lag", "error", "err/prior", "activity"], area_rows))
     link_rows = []
+    delays = any(l.delay > 1 for l in spec.links)  # the column only where some link has one
     for l in spec.links:
         s = scores.links[l.id]
         in_budgets = [b.name for b in spec.budgets if l.id in b.links]
         # A budgeted link pays through its budget, not a price: say which.
         price = fmt(s.price) if s.price or not in_budgets else "budget " + ",".join(in_budgets)
-        row = [l.id, l.kind, fmt(s.power), fmt(s.snr), fmt(s.bits), price]
+        row = [l.id, l.kind] + ([l.delay] if delays else []) + [fmt(s.power), fmt(s.snr), fmt(s.bits), price]
         if result is not None:
             shares = [f"{b.name}:{100 * s.power / b.total:.1f}%" for b in result.budgets.values()
                       if l.id in b.links and b.total > 0]
@@ -202,15 +240,21 @@ def scores_text(spec, scores, gains=None, result=None) -> str:
             row.append(fmt(through_gain(spec, gains, l), 3))
             row.append("silent" if l.id in result.silent else "")
         link_rows.append(row)
-    header = ["link", "kind", "power", "SNR", "bits/step", "price"]
+    header = ["link", "kind"] + (["delay"] if delays else []) + ["power", "SNR", "bits/step", "price"]
     if result is not None:
         header += ["budget share", "through gain", "note"]
     out.append(table(header, link_rows))
+    if spec.units is not None:
+        out.append(physical_text(spec, scores))
     if spec.budgets and result is None:
+        from .allocation import constraints
+
         rows = []
-        for b in spec.budgets:
-            used = sum(scores.links[lid].power for lid in b.links)
-            rows.append([b.name, fmt(b.total), fmt(used), "yes" if used <= b.total * (1 + 1e-6) else "NO (over)"])
+        cons = constraints(spec)
+        spent = cons.used([scores.links[l.id].power for l in spec.links],
+                          [scores.areas[a.name].activity for a in spec.areas])
+        for name, total, used in zip(cons.names, cons.totals, spent):
+            rows.append([name, fmt(total), fmt(used), "yes" if used <= total * (1 + 1e-6) else "NO (over)"])
         out.append(table(["budget", "total", "used by these gains", "within"], rows))
     out.append(
         f"objective {fmt(scores.objective, 6)} = weighted error {fmt(scores.weighted_error, 6)}"
@@ -222,6 +266,16 @@ def scores_text(spec, scores, gains=None, result=None) -> str:
     return "\n\n".join(out)
 
 
+def budget_terms(row: dict) -> str:
+    """What a budget row of a result counts beyond plain link powers: cost
+    weights, areas' activity, or the link it caps."""
+    if row.get("cap_of"):
+        return f"cap on {row['cap_of']}"
+    parts = [f"{lid} x{w:g}" for lid, w in (row.get("costs") or {}).items() if w != 1]
+    parts += [f"activity {a}" + (f" x{w:g}" if w != 1 else "") for a, w in (row.get("activity") or {}).items()]
+    return ", ".join(parts) or "powers"
+
+
 def result_text(result) -> str:
     """The full report of a design."""
     spec = result.spec
@@ -229,9 +283,12 @@ def result_text(result) -> str:
     parts.append(scores_text(spec, result.scores, result.gains, result))
     if result.budgets:
         rows = [[b.name, fmt(b.total), fmt(b.used), f"{100 * b.used / b.total:.2f}%" if b.total else "-",
-                 fmt(b.shadow_price), "yes" if b.met else "NO"] for b in result.budgets.values()]
-        parts.append(table(["budget", "total", "used", "use", "shadow price", "met"], rows))
-    for verdict, head in (("not worth sending", "not worth sending (checked at this design):"),
+                 fmt(b.shadow_price), "yes" if b.met else "NO",
+                 budget_terms({"cap_of": b.cap_of, "costs": b.costs, "activity": b.activity})]
+                for b in result.budgets.values()]
+        parts.append(table(["budget", "total", "used", "use", "shadow price", "met", "terms"], rows))
+    for verdict, head in (("switched off", "switched off by a zero budget:"),
+                          ("not worth sending", "not worth sending (checked at this design):"),
                           ("untested", "silent, but not checked at this design:")):
         rows = [f"  {lid}: {info['reason']}" for lid, info in result.silent.items() if info.get("verdict") == verdict]
         if rows:
@@ -296,6 +353,8 @@ EXPLANATIONS = (
     ("areas", "activity", "E||z||^2, the mean squared size of the area's whole state"),
     ("links", "link", "the link's id, FROM->TO"),
     ("links", "kind", "prediction (top-down, sends G z) or residual (bottom-up, sends S u - P p~)"),
+    ("links", "delay", "the link's conduction delay in steps: its receiver uses at t+1 what was sent at "
+                       "t - delay + 1 (shown only when some link has a delay above 1)"),
     ("links", "power", "E||s||^2, the mean squared size of what the link sends per step, before its channel adds "
                        "noise (model units squared); this is what prices and budgets charge for"),
     ("links", "SNR", "power divided by the channel's noise power: how loud the link is above its noise"),
@@ -309,9 +368,17 @@ EXPLANATIONS = (
                               "sent louder and received softer with nothing changed)"),
     ("links", "note", "'silent' when the link sends nothing at this design; below the tables, whether it was "
                       "checked not worth sending or left untested, and why (docs/search.md says what each promises)"),
+    ("physical", "bits/s", "the link's bits per step divided by the step's duration (spec `units: step`)"),
+    ("physical", "EVENT/s", "events per second (spikes, bits, ...): bits/s divided by the bits one event carries "
+                            "(map bits), or power divided by the power of one event per step (map power)"),
+    ("physical", "energy (W)", "joules per second: events per second times the energy of one event; the presets' "
+                               "numbers and their sources are in hierarchy/units.py and docs/spec.md"),
     ("budgets", "budget", "the budget group's name"),
     ("budgets", "total", "the most power the group's links may send together"),
-    ("budgets", "used", "the power they send at this design"),
+    ("budgets", "used", "what they spend at this design: each link's power times its cost weight, plus the "
+                        "weighted activity of the budget's areas"),
+    ("budgets", "terms", "what the budget counts beyond plain powers: cost weights other than 1, areas' "
+                         "activity, or (a cap row) the one link it caps"),
     ("budgets", "use", "used as a percentage of total"),
     ("budgets", "shadow price", "how much the objective would fall per unit of extra budget (the Lagrange "
                                 "multiplier); 0 when the budget does not bind"),

@@ -27,6 +27,7 @@ __all__ = [
     "STABLE_RADIUS",
     "MAX_TOTAL_DIM",
     "MAX_LAG",
+    "MAX_DELAY",
     "MAX_LEVEL",
     "MAX_NUMBER",
     "suggest",
@@ -43,6 +44,7 @@ __all__ = [
     "check_area",
     "check_lag_depth",
     "check_link_ends",
+    "check_delay_states",
     "check_costs",
     "check_spec",
 ]
@@ -54,6 +56,8 @@ STABLE_RADIUS = 1.0 - 1e-9
 MAX_TOTAL_DIM = 5000
 #: Largest lag of an area.
 MAX_LAG = 50
+#: Longest conduction delay of a link, in steps.
+MAX_DELAY = 50
 #: Highest drawing level an area may be given (more than any real hierarchy).
 MAX_LEVEL = 1000
 #: Largest size of any number in a spec. The tool squares and multiplies
@@ -277,6 +281,20 @@ def check_link_ends(source: str, target: str, kind: str, sensor_names, where, er
                 "a signal going down to a sensor is a prediction: write `kind: prediction`", *where("to"), error)
 
 
+def check_delay_states(links, where=None, error=SpecError) -> None:
+    """A link of delay k keeps k - 1 copies of its signal in the closed
+    loop; refuse delays whose copies together pass the size limit.
+    ``where(link) -> (place, line)`` names a link's delay."""
+    total = 0
+    for link in links:
+        total += (link.delay - 1) * link.dim
+        if total > MAX_TOTAL_DIM:
+            place, line = where(link) if where else (f"links[{link.id}].delay", None)
+            _refuse(f"too large: the links' delays keep {total} delayed signal numbers in the closed loop so "
+                    f"far (each link of delay k keeps k - 1 copies of its signal); the limit is {MAX_TOTAL_DIM}",
+                    "use shorter delays or narrower links", place, line, error)
+
+
 def _link_place(link, key):
     return (f"links[{link.id}].{key}" if key else f"links[{link.id}]"), None
 
@@ -301,7 +319,10 @@ def check_costs(links, budgets, where=_link_place, error=SpecError) -> None:
     budget_of = {}
     for budget in budgets:
         for link_id in budget.links:
-            budget_of.setdefault(link_id, budget.name)
+            # A link that costs nothing in its budget and has no cap there
+            # is not limited by it.
+            if budget.weight(link_id) > 0 or link_id in budget.caps:
+                budget_of.setdefault(link_id, budget.name)
     ids = {link.id: link for link in links}
     for link in links:
         if link.price > 0 or link.id in budget_of:
@@ -411,6 +432,9 @@ def check_spec(spec: Spec, place=None, error=SpecError) -> Spec:
     if spec.areas:
         deepest = max(spec.areas, key=lambda a: a.lag)
         check_lag_depth(world.dim, deepest.lag, at(f"areas[{deepest.name}].lag"), None, error)
+    for link in spec.links:
+        check_whole(link.delay, 1, MAX_DELAY, at(f"links[{link.id}].delay"), None, error)
+    check_delay_states(spec.links, lambda link: (at(f"links[{link.id}].delay"), None), error)
     sensor_names = {s.name for s in spec.sensors}
     dims = {s.name: s.dim for s in spec.sensors} | {a.name: a.dim for a in spec.areas}
     ids = {link.id: link for link in spec.links}

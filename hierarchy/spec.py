@@ -25,6 +25,7 @@ import numpy as np
 import yaml
 
 from hierarchy.errors import SpecError
+from hierarchy.units import MAPS, PRESETS, RADIO_DISTANCE, Units, radio_energy_per_bit
 from hierarchy.io import atomic_write_text
 from hierarchy.model import (
     LINK_KINDS,
@@ -42,7 +43,8 @@ from hierarchy.model import (
 )
 from hierarchy import rules
 from hierarchy.rules import suggest as _suggest
-from hierarchy.rules import MAX_LAG, MAX_LEVEL, MAX_NUMBER, MAX_TOTAL_DIM, STABLE_RADIUS  # noqa: F401 (re-exported)
+from hierarchy.rules import (  # noqa: F401 (re-exported)
+    MAX_DELAY, MAX_LAG, MAX_LEVEL, MAX_NUMBER, MAX_TOTAL_DIM, STABLE_RADIUS)
 
 SPEC_VERSION = 1
 SCHEMA_PATH = Path(__file__).with_name("spec-v1.schema.json")
@@ -755,6 +757,30 @@ class _Selector(_Kind):
                 fix="for a single link write a list: [A->B]")
 
 
+@dataclass(frozen=True)
+class _LinkNumbers(_Kind):
+    """A mapping from link ids (``FROM->TO``) to numbers of at least
+    ``minimum``; returns ``(id, number, position)`` triples."""
+
+    minimum: float = 0.0
+
+    def schema(self):
+        return {"type": "object", "propertyNames": {"type": "string", "pattern": "->"},
+                "additionalProperties": _Real(self.minimum).schema(), "minProperties": 1}
+
+    def check(self, at):
+        if not isinstance(at.value, dict) or not at.value:
+            at.fail(f"expected a mapping from link ids to numbers, got {_describe(at.value)}",
+                    fix="write `{FROM->TO: number}`")
+        out = []
+        for key in at.value:
+            child = _child(at, key)
+            if not isinstance(key, str) or "->" not in key:
+                child.fail(f"`{key}` is not a link id", fix="write link ids as FROM->TO")
+            out.append((key, _Real(self.minimum).check(child), child))
+        return out
+
+
 # --------------------------------------------------------------------------
 # Key tables: one per section (the single source of truth)
 # --------------------------------------------------------------------------
@@ -861,6 +887,10 @@ _LINK_KEYS = (
     _Key("noise", _Matrix(), "channel-noise covariance (dim x dim)",
          default="zero"),
     _Key("price", _Real(0.0), "price per unit of power sent", default=0),
+    _Key("delay", _Int(1, MAX_DELAY),
+         "conduction delay in whole steps: the receiver uses at t+1 what was "
+         "sent at t - delay + 1 (1: the next step, as every link without it)",
+         default=1),
     _Key("pin", _Table(_LINK_PIN_KEYS),
          "gains fixed by hand: G and K on a prediction; S, P and K on a "
          "residual"),
@@ -877,8 +907,44 @@ _BUDGET_KEYS = (
     _Key("links", _Selector(),
          "`all`, a list of link ids (`A->B`), {from: NODE} or {to: NODE}",
          required=True, fix="add `links: all` or a list of link ids"),
-    _Key("total", _Real(0.0), "the most power the group may send in total",
+    _Key("total", _Real(0.0), "the most the group may spend in total (with "
+         "`each`: each of its parts); 0 switches its links off",
          required=True, fix="add `total: ...`"),
+    _Key("costs", _LinkNumbers(),
+         "link id -> what one unit of its power costs in this budget (a "
+         "long-range link costs more); links not named cost 1"),
+    _Key("caps", _LinkNumbers(),
+         "link id -> the most power that link may send on its own"),
+    _Key("activity", _MapOf(_Real(0.0), "weight"),
+         "area -> weight of its activity E||z||^2 in this budget"),
+    _Key("each", _Choice(("sender", "receiver")),
+         "one budget per sending (or receiving) node over its selected "
+         "links, named NAME[NODE], each with this total"),
+)
+
+_UNITS_KEYS = (
+    _Key("step", _Real(0.0), "seconds one step lasts", required=True,
+         fix="add `step: 0.01` (seconds per step)"),
+    _Key("preset", _Choice(tuple(PRESETS)),
+         "documented numbers to start from: " + ", ".join(PRESETS)
+         + " (hierarchy/units.py names their sources)"),
+    _Key("map", _Choice(MAPS),
+         "how a link's signal becomes events: bits (its Gaussian channel "
+         "capacity per step) or power (E||s||^2, a linear map)",
+         default="bits"),
+    _Key("event", _Text(),
+         "what one event is, for reports (spike, bit, packet); default: the "
+         "preset's, else `event`"),
+    _Key("bits_per_event", _Real(0.0),
+         "bits one event carries (map bits); default: the preset's, else 1"),
+    _Key("power_per_event", _Real(0.0),
+         "model power that makes one event per step (map power, required "
+         "there)"),
+    _Key("energy_per_event", _Real(0.0),
+         "joules per event; default: the preset's (required without one)"),
+    _Key("distance", _Real(0.0),
+         f"metres between a radio link's ends (preset radio only); default "
+         f"{RADIO_DISTANCE:g}"),
 )
 
 _TOP_KEYS = (
@@ -901,6 +967,9 @@ _TOP_KEYS = (
     _Key("budgets", _ListOf(_Table(_BUDGET_KEYS),
                             "{name: N, links: all, total: 1.0}"),
          "hard limits on the total power of groups of links", default=[]),
+    _Key("units", _Table(_UNITS_KEYS),
+         "physical units for reports: seconds per step and the energy of a "
+         "link's signal; changes no computed number"),
 )
 
 
@@ -1180,7 +1249,73 @@ def _link(draft: _LinkDraft, drafts_by_id: dict, node_dims: dict,
     pin = _link_pins(draft, drafts_by_id, node_dims, sensor_names)
     return Link(source=draft.source, target=draft.target, kind=draft.kind,
                 dim=draft.dim, noise=frozen_array(noise), price=f.get("price"),
-                pin=frozen_map(pin))
+                pin=frozen_map(pin), delay=f.get("delay"))
+
+
+def _parse_units(f: _Fields | None) -> Units | None:
+    """The ``units:`` section: a preset's numbers, overridden by what the
+    section states; every event count needs a positive size."""
+    if f is None:
+        return None
+    step = f.get("step")
+    if not step > 0:
+        f.pos("step").fail("a step must last some time, got 0",
+                           fix="give the step's duration in seconds, e.g. `step: 0.01`")
+    preset = PRESETS.get(f.get("preset")) if f.given("preset") else None
+    kind = f.get("map")
+    wrong = "power_per_event" if kind == "bits" else "bits_per_event"
+    if f.given(wrong):
+        f.pos(wrong).fail(f"`{wrong}` does not apply to `map: {kind}`",
+                          fix=f"remove `{wrong}`, or write `map: "
+                              f"{'power' if kind == 'bits' else 'bits'}`")
+    if f.given("distance") and (preset is None or preset.name != "radio"):
+        f.pos("distance").fail("a distance applies only to the radio preset",
+                               fix="remove `distance`, or write `preset: radio`")
+    if kind == "bits":
+        if f.given("bits_per_event"):
+            per_event = f.get("bits_per_event")
+        else:
+            per_event = preset.bits_per_event if preset else 1.0
+        size = "bits_per_event"
+    else:
+        if not f.given("power_per_event"):
+            f.pos("power_per_event").fail(
+                "`map: power` needs the model power that makes one event per step",
+                fix="add `power_per_event: ...` (model units of power)")
+        per_event, size = f.get("power_per_event"), "power_per_event"
+    if not per_event > 0:
+        f.pos(size).fail(f"`{size}` must be above 0, got 0",
+                         fix=f"give how much one event is worth, e.g. `{size}: 1`")
+    distance = None
+    if f.given("energy_per_event"):
+        if f.given("distance"):
+            f.pos("distance").fail(
+                "the distance sets the radio's energy per bit, and "
+                "`energy_per_event` gives it too",
+                fix="keep one of `distance` and `energy_per_event`")
+        energy = f.get("energy_per_event")
+    elif preset is None:
+        f.pos("energy_per_event").fail(
+            "without a preset the energy of one event must be given",
+            fix="add `energy_per_event: ...` (joules), or `preset: "
+                + " | ".join(PRESETS) + "`")
+    elif preset.energy_per_event is None:  # radio: from the distance
+        distance = f.get("distance") if f.given("distance") else RADIO_DISTANCE
+        energy = radio_energy_per_bit(distance)
+    else:
+        energy = preset.energy_per_event
+    event = f.get("event") if f.given("event") else (preset.event if preset else "event")
+    return Units(step=step, map=kind, event=event.strip(), per_event=per_event,
+                 energy_per_event=energy, preset=preset.name if preset else None,
+                 distance=distance, sources=preset.sources if preset else ())
+
+
+def _check_delay_states(drafts: list, links: tuple) -> None:
+    """A link of delay k keeps k - 1 copies of its signal in the closed
+    loop; refuse delays whose copies together pass the size limit."""
+    by_id = {draft.id: draft for draft in drafts}
+    rules.check_delay_states(links, lambda link: (by_id[link.id].fields.pos("delay").place,
+                                                  by_id[link.id].fields.pos("delay").line))
 
 
 def _link_pins(draft, drafts_by_id, node_dims, sensor_names) -> dict:
@@ -1232,7 +1367,7 @@ def _check_pin_kind(at: _At, kind: str) -> None:
                     f"or change the kind")
 
 
-def _parse_budgets(items: list, links: tuple, node_dims: dict) -> tuple:
+def _parse_budgets(items: list, links: tuple, node_dims: dict, area_names=()) -> tuple:
     budgets, seen = [], {}
     for item in items:
         f = _read_table(item, _BUDGET_KEYS)
@@ -1244,9 +1379,60 @@ def _parse_budgets(items: list, links: tuple, node_dims: dict) -> tuple:
         seen[name] = item.place
         ids, selector = _select_links(f.pos("links"), f.get("links"), links,
                                       node_dims)
-        budgets.append(Budget(name=name, links=ids, total=f.get("total"),
-                              selector=selector))
+        total = f.get("total")
+        costs = _link_numbers(f, "costs", ids)
+        caps = _link_numbers(f, "caps", ids)
+        activity = {}
+        if f.given("activity"):
+            for area, weight in f.get("activity"):
+                _known(_child(f.pos("activity"), area), area, tuple(area_names), "area")
+                activity[area] = weight
+            if total == 0 and any(activity.values()):
+                f.pos("activity").fail(
+                    "a budget of total 0 cannot include activity: an area's "
+                    "activity is never exactly zero while it works",
+                    fix="give the budget a positive total, or move the activity "
+                        "into its own budget")
+        if not f.given("each"):
+            budgets.append(Budget(name=name, links=ids, total=total,
+                                  selector=selector, costs=costs, caps=caps,
+                                  activity=activity))
+            continue
+        end = "source" if f.get("each") == "sender" else "target"
+        by_node = {}
+        for lid in ids:
+            link = next(l for l in links if l.id == lid)
+            by_node.setdefault(getattr(link, end), []).append(lid)
+        for node, part in by_node.items():
+            own = tuple(part)
+            budgets.append(Budget(
+                name=f"{name}[{node}]", links=own, total=total,
+                selector=f"{selector}, {f.get('each')} {node}",
+                costs={k: v for k, v in costs.items() if k in own},
+                caps={k: v for k, v in caps.items() if k in own},
+                activity={a: w for a, w in activity.items() if a == node}))
+    names = [b.name for b in budgets]
+    for b in budgets:
+        if names.count(b.name) > 1:
+            raise SpecError(f"two budgets are called `{b.name}`", place="budgets",
+                            fix="rename a budget so that `each` does not repeat "
+                                "another budget's name")
     return tuple(budgets)
+
+
+def _link_numbers(f, key: str, ids: tuple) -> dict:
+    """A budget's ``costs`` or ``caps``: every id must be one of its links."""
+    if not f.given(key):
+        return {}
+    out = {}
+    for lid, value, at in f.get(key):
+        if lid not in ids:
+            at.fail(f"the link {lid} is not in this budget",
+                    fix=f"name one of the budget's links ({', '.join(ids[:4])}"
+                        f"{', ...' if len(ids) > 4 else ''}) or add {lid} to "
+                        f"`links`")
+        out[lid] = value
+    return out
 
 
 def _select_links(at: _At, choice: tuple, links: tuple, node_dims: dict):
@@ -1350,7 +1536,8 @@ def _parse_document(root: _At, path) -> Spec:
     drafts_by_id = {d.id: d for d in drafts}
     links = tuple(_link(d, drafts_by_id, node_dims, sensor_names)
                   for d in drafts)
-    budgets = _parse_budgets(top.get("budgets"), links, node_dims)
+    _check_delay_states(drafts, links)
+    budgets = _parse_budgets(top.get("budgets"), links, node_dims, [a.name for a in areas])
     _check_costs(drafts, links, budgets)
     default_name = Path(path).stem if path else "unnamed"
     return Spec(name=top.get("name") or default_name, world=world,
@@ -1358,7 +1545,8 @@ def _parse_document(root: _At, path) -> Spec:
                 version=SPEC_VERSION,
                 warnings=_warnings(drafts, links, sensor_names)
                 + _flat_list_warnings(top.get("sensors")),
-                path=str(path) if path is not None else None)
+                path=str(path) if path is not None else None,
+                units=_parse_units(top.get("units")))
 
 
 # --------------------------------------------------------------------------

@@ -438,8 +438,10 @@ def _columns_of(spec: Spec) -> list:
     cols = [f"areas[{a.name}].error" for a in spec.areas if a.has_target]
     for l in spec.links:
         cols += [f"links[{l.id}].power", f"links[{l.id}].through_gain", f"links[{l.id}].silent"]
-    for b in spec.budgets:
-        cols += [f"budgets[{b.name}].used", f"budgets[{b.name}].shadow_price"]
+    from .allocation import constraints
+
+    for name in constraints(spec).names:  # budgets and their caps, as the results list them
+        cols += [f"budgets[{name}].used", f"budgets[{name}].shadow_price"]
     return cols
 
 
@@ -468,17 +470,6 @@ def _row(result) -> dict:
                 "seconds": float(result.seconds), "message": result.message})
     return {k: (float(v) if isinstance(v, (np.floating, np.integer)) and not isinstance(v, bool) else v)
             for k, v in row.items()}
-
-
-def _prices_at(result) -> np.ndarray:
-    """Per-link prices the design was a price-form optimum for: the spec's
-    prices plus the shadow prices of the budgets holding each link."""
-    prices = np.array([l.price for l in result.spec.links], dtype=float)
-    for b in result.budgets.values():
-        for i, l in enumerate(result.spec.links):
-            if l.id in b.links:
-                prices[i] += b.shadow_price
-    return prices
 
 
 def run_point(spec: Spec, options=None, start=None) -> dict:

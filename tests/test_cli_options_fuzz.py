@@ -20,6 +20,7 @@ from __future__ import annotations
 import contextlib
 import io
 import os
+import shutil
 import signal
 import subprocess
 import sys
@@ -65,6 +66,10 @@ GAINS_IN = [str(SPECS / "single-loop.gains.json")] * 3 + [
     str(ROOT / "tests" / "adversarial" / "gains" / "nan-entry.json")]
 OUT = [str(WORK / "out.json"), str(WORK / "out2.json"), "", "/missing/dir/x.json", str(WORK / "folder"),
        str(WORK / "folder") + "/", str(WORK / "protected.json"), str(WORK / "pipe"), "/dev/null", "/proc/x.json"]
+#: Copies of corpus results to draw: an empty ``-o`` draws beside the result,
+#: which must not write into the repository's corpus.
+RESULTS = WORK / "results"
+shutil.copytree(ROOT / "tests" / "adversarial" / "results", RESULTS)
 PICTURES = [str(WORK / "p.svg"), str(WORK / "p.txt"), "", "/missing/p.png", str(WORK / "protected.json")]
 BASES = [str(WORK / "run"), str(WORK / "run2.csv"), "", "/missing/run", "/proc/run", str(WORK / "folder") + "/"]
 INTS = st.sampled_from(["0", "-1", "-7", "1", "2", "3", "300", "1000000000000", "99999999999999999999", "x", "",
@@ -131,7 +136,7 @@ COMMANDS = {
                          opt("--density", FLOATS), opt("--relays", FLOATS), opt("--seed", INTS),
                          opt("--max-lag", st.sampled_from(["0", "1", "-1", "51", "100000"])), flag("--budgets"),
                          st.tuples(st.just("-o"), st.sampled_from(OUT[:1] + OUT[2:] + [str(WORK / "g.yaml")])).map(list)),
-    "render": _combine(st.just("render"), st.sampled_from([str(ROOT / "tests" / "adversarial" / "results" / n)
+    "render": _combine(st.just("render"), st.sampled_from([str(RESULTS / n)
                                                            for n in ("valid.json", "no-sensors.json", "deep.json",
                                                                      "power-nan.json")] + ["", str(WORK / "pipe")]),
                        st.tuples(st.just("-o"), st.sampled_from(PICTURES)).map(list),

@@ -27,7 +27,7 @@ import scipy.linalg as sla
 import hierarchy
 import hierarchy.io as hio
 from hierarchy.cli import main
-from hierarchy.design import Options, design, design_budgets, design_prices
+from hierarchy.design import BUDGET_ITER, Options, design, design_budgets, design_prices
 from hierarchy.errors import (
     GainsError,
     InputError,
@@ -195,8 +195,9 @@ def test_budget_form_is_right_or_says_it_is_not(c):
     assert_honest(res)
     if res.status == "converged":
         assert res.scores.areas["a"].error == pytest.approx(c / 2, rel=1e-5)
-        # The multiplier search stops within budget_rtol (1e-3) of the budget.
-        assert res.budgets["b"].shadow_price == pytest.approx(0.125, rel=5e-3)
+        # The block steps end within budget_rtol (3e-5) of the budget, and the
+        # allocation's Newton step corrects the multiplier for the rest.
+        assert res.budgets["b"].shadow_price == pytest.approx(0.125, rel=1e-4)
     else:
         assert res.message
 
@@ -381,8 +382,8 @@ def test_a_design_over_budget_is_reported_failed(monkeypatch):
 
     real = dm._meet_budgets
 
-    def overspend(prob, theta, groups, totals, mu):
-        theta = real(prob, theta, groups, totals, mu)
+    def overspend(prob, theta, rows, mu):
+        theta = real(prob, theta, rows, mu)
         dm._scale_links(prob, theta, np.full(len(prob.spec.links), 1.5))
         return theta
 
@@ -768,7 +769,8 @@ def test_max_iter_bounds_a_budget_design():
     spec = hierarchy.load_spec(ROOT / "specs/two-senses.yaml")
     opts = Options(restarts=1, max_iter=50, probe_iter=10)
     res = design_budgets(spec, opts)
-    assert res.iterations <= opts.max_iter + opts.restarts * opts.probe_iter
+    # The budget form's allowance is BUDGET_ITER times max_iter (design.py).
+    assert res.iterations <= BUDGET_ITER * opts.max_iter + opts.restarts * opts.probe_iter
 
 
 PINNED_RECEIVER = """

@@ -390,12 +390,17 @@ def random_gains(spec, rng, radius=0.8):
     for lid, blocks in shapes["links"].items():
         g.links[lid] = {k: rng.normal(size=s) / math.sqrt(s[1]) for k, s in blocks.items()}
     lay = Layout(spec)
-    r = spectral_radius(assemble(lay, with_pins(spec, g)).Phi[lay.nx:, lay.nx:])
-    for blocks in g.areas.values():
-        blocks["M"] *= radius / max(r, 1e-9)
-    for blocks in g.links.values():
-        if "K" in blocks:
-            blocks["K"] *= radius / max(r, 1e-9)
+    # Scaling every M and K scales the area block's radius exactly, except on
+    # delayed links, whose copies carry fixed entries: there, repeat.
+    for k in range(30):
+        r = spectral_radius(assemble(lay, with_pins(spec, g)).Phi[lay.nx:, lay.nx:])
+        if k and r <= radius * (1 + 1e-6):
+            break
+        for blocks in g.areas.values():
+            blocks["M"] *= radius / max(r, 1e-9)
+        for blocks in g.links.values():
+            if "K" in blocks:
+                blocks["K"] *= radius / max(r, 1e-9)
     return g
 
 

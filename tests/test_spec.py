@@ -965,9 +965,9 @@ def test_schema_rejects_unknown_keys_and_wrong_pins():
 def test_schema_lists_every_key_the_parser_knows():
     props = spec_schema()["properties"]
     assert list(props) == ["spec", "name", "world", "sensors", "areas",
-                           "links", "budgets"]
+                           "links", "budgets", "units"]
     link = props["links"]["items"]["properties"]
-    assert list(link) == ["from", "to", "kind", "dim", "noise", "price", "pin"]
+    assert list(link) == ["from", "to", "kind", "dim", "noise", "price", "delay", "pin"]
     assert link["noise"]["default"] == "zero"
 
 
