@@ -82,8 +82,8 @@ def suggest(word, known) -> str:
 
     Examples
     --------
-    >>> suggest("v2", ["v1", "top"])
-    'did you mean `v1`? (known here: v1, top)'
+    >>> suggest("prob", ["probe", "top"])
+    'did you mean `probe`? (known here: probe, top)'
     """
     known = [str(k) for k in known]
     close = difflib.get_close_matches(str(word), known, n=1)
