@@ -487,8 +487,16 @@ def check_spec(spec: Spec, place=None, error=SpecError) -> Spec:
         _check_entries(link.noise, where, error)
         check_covariance(link.noise, where, None, error)
         check_number(float(link.price), at(f"links[{link.id}].price"), None, error, minimum=0.0)
+    area_names = [a.name for a in spec.areas]
     for b in spec.budgets:
         check_number(float(b.total), at(f"budgets[{b.name}].total"), None, error, minimum=0.0)
+        for key in ("costs", "caps"):
+            for link_id, x in getattr(b, key).items():
+                check_known(link_id, b.links, "link", at(f"budgets[{b.name}].{key}"), None, error)
+                check_number(float(x), at(f"budgets[{b.name}].{key}.{link_id}"), None, error, minimum=0.0)
+        for area, x in b.activity.items():
+            check_known(area, area_names, "area", at(f"budgets[{b.name}].activity"), None, error)
+            check_number(float(x), at(f"budgets[{b.name}].activity.{area}"), None, error, minimum=0.0)
     check_world(world, at("world"), None, error)
 
     def link_place(link, key):

@@ -233,3 +233,15 @@ def test_pinned_gain_shape_refused_alike():
     built = check_error(replace(spec, links=(link,) + spec.links[1:]))
     same_rule(read, built)
     assert built.place == "links[probe->station-view].pin.S"
+
+
+def test_budget_numbers_of_a_python_built_spec_are_checked():
+    spec = parse_spec((ROOT / "specs" / "two-senses.yaml").read_text(encoding="utf-8"))
+    budget = spec.budgets[0]
+    link_id = budget.links[0]
+    bad = replace(budget, caps={link_id: -1.0})
+    err = check_error(replace(spec, budgets=(bad,) + spec.budgets[1:]))
+    assert err.place == f"budgets[{budget.name}].caps.{link_id}"
+    assert err.message == "must be at least 0, got -1"
+    stray = replace(budget, activity={"nowhere": 1.0})
+    assert "no area called `nowhere`" in check_error(replace(spec, budgets=(stray,) + spec.budgets[1:])).message
