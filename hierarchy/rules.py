@@ -45,6 +45,7 @@ __all__ = [
     "check_lag_depth",
     "check_link_ends",
     "check_delay_states",
+    "check_pin",
     "check_costs",
     "check_spec",
 ]
@@ -338,27 +339,34 @@ def check_costs(links, budgets, where=_link_place, error=SpecError) -> None:
                     "give it a price (e.g. `price: 0.1`) or put it in a budget", *where(link, ""), error)
 
 
+def check_pin(kind: str, gain: str, source: str, target: str, sensor_names, paired: bool, place, line=None,
+              error=SpecError) -> None:
+    """A link pins only the gains of its kind; a prediction into a sensor has
+    no receiving gain K, and a residual has a gain P only when a prediction
+    link goes back the other way (``paired``)."""
+    own = ("G", "K") if kind == PREDICTION else ("S", "P", "K")
+    if gain not in own:
+        _refuse(f"a {kind} link has no gain {gain}",
+                f"a {kind} link pins only {', '.join(own)}; remove {gain} or change the kind", place, line, error)
+    if gain == "K" and target in sensor_names:
+        _refuse(f"a prediction into sensor `{target}` has no receiving gain K: a sensor keeps no state",
+                "remove K", place, line, error)
+    if gain == "P" and not paired:
+        _refuse(f"there is no prediction link {target}->{source} for this residual to subtract, so it has "
+                f"no gain P", f"remove P, or add the prediction link {target}->{source}", place, line, error)
+
+
 def _check_link_pins(link, ids, dims, sensor_names, place, error) -> None:
-    """The pinned gains of a link built in Python: the kind's own gains, in
-    their shapes (the reader checks the same while it expands them)."""
-    own = ("G", "K") if link.kind == PREDICTION else ("S", "P", "K")
+    """The pinned gains of a link built in Python: :func:`check_pin`, and
+    their shapes (the reader checks the shapes while it expands them)."""
     src, dst, dim = link.source, link.target, link.dim
     pair = ids.get(f"{dst}->{src}")
+    paired = pair is not None and pair.kind == PREDICTION
     for gain, matrix in link.pin.items():
-        if gain not in own:
-            _refuse(f"a {link.kind} link has no gain {gain}",
-                    f"a {link.kind} link pins only {', '.join(own)}; remove {gain} or change the kind",
-                    place(gain), None, error)
+        check_pin(link.kind, gain, src, dst, sensor_names, paired, place(gain), None, error)
         if gain == "K":
-            if dst in sensor_names:
-                _refuse(f"a prediction into sensor `{dst}` has no receiving gain K: a sensor keeps no state",
-                        "remove K", place(gain), None, error)
             shape = (dims[dst], dim, f"rows: `{dst}` has size {dims[dst]}; columns: the link's dim {dim}")
         elif gain == "P":
-            if pair is None or pair.kind != PREDICTION:
-                _refuse(f"there is no prediction link {dst}->{src} for this residual to subtract, so it has "
-                        f"no gain P", f"remove P, or add the prediction link {dst}->{src}", place(gain), None,
-                        error)
             shape = (dim, pair.dim, f"rows: the link's dim {dim}; columns: the dim of {pair.id}, {pair.dim}")
         else:
             shape = (dim, dims[src], f"rows: the link's dim {dim}; columns: `{src}` has size {dims[src]}")

@@ -1327,25 +1327,21 @@ def _link_pins(draft, drafts_by_id, node_dims, sensor_names) -> dict:
     src, dst = draft.source, draft.target
     sender = (dim, node_dims[src], f"rows: the link's dim {dim}; columns: "
                                    f"`{src}` has size {node_dims[src]}")
+    pair = drafts_by_id.get(f"{dst}->{src}")
+    paired = pair is not None and pair.kind == PREDICTION
+    for gain in ("K", "P"):
+        if pins.given(gain):
+            pos = pins.pos(gain)
+            rules.check_pin(draft.kind, gain, src, dst, sensor_names, paired, pos.place, pos.line)
     shapes = {}
     if draft.kind == PREDICTION:
         shapes["G"] = sender
-        if dst in sensor_names and pins.given("K"):
-            pins.pos("K").fail(f"a prediction into sensor `{dst}` has no "
-                               f"receiving gain K: a sensor keeps no state",
-                               fix="remove K")
     else:
         shapes["S"] = sender
-        pair = drafts_by_id.get(f"{dst}->{src}")
-        if pair is not None and pair.kind == PREDICTION:
+        if paired:
             shapes["P"] = (dim, pair.dim, f"rows: the link's dim {dim}; "
                                           f"columns: the dim of {pair.id}, "
                                           f"{pair.dim}")
-        elif pins.given("P"):
-            pins.pos("P").fail(f"there is no prediction link {dst}->{src} for "
-                               f"this residual to subtract, so it has no gain P",
-                               fix=f"remove P, or add the prediction link "
-                                   f"{dst}->{src}")
     if dst not in sensor_names:
         shapes["K"] = (node_dims[dst], dim, f"rows: `{dst}` has size "
                                             f"{node_dims[dst]}; columns: the "
@@ -1355,16 +1351,14 @@ def _link_pins(draft, drafts_by_id, node_dims, sensor_names) -> dict:
 
 def _check_pin_kind(at: _At, kind: str) -> None:
     """Say plainly when a gain of the other kind of link is pinned."""
-    own = [k.name for k in _PIN_KEYS[kind]]
     every_gain = {k.name for k in _LINK_PIN_KEYS}
     if not isinstance(at.value, dict):
         return  # _read_table reports it
     for gain in at.value:
-        if gain in every_gain and gain not in own:
-            _child(at, gain).fail(
-                f"a {kind} link has no gain {gain}",
-                fix=f"a {kind} link pins only {', '.join(own)}; remove {gain} "
-                    f"or change the kind")
+        if gain in every_gain:  # the others are unknown keys, for _read_table
+            pos = _child(at, gain)
+            # The receiver rules (K, P) need the link's ends: _link_pins checks them.
+            rules.check_pin(kind, gain, "", "", (), True, pos.place, pos.line)
 
 
 def _parse_budgets(items: list, links: tuple, node_dims: dict, area_names=()) -> tuple:
