@@ -201,6 +201,43 @@ class DesignResult:
 
         return result_to_dict(self)
 
+    def to_pandas(self):
+        """The areas and links of this design as two pandas DataFrames.
+
+        Returns
+        -------
+        hierarchy.notebook.DesignTables
+            A named tuple ``(areas, links)``: ``areas`` indexed by area name
+            (exact errors, priors, activities, weights, lags, relay flag and
+            drawing level), ``links`` indexed by link id (kind, power, noise
+            power, SNR, bits, price, identifiability, through gain, silence
+            and budget shares). Columns are listed in
+            :func:`hierarchy.notebook.design_tables`.
+
+        Examples
+        --------
+        >>> import hierarchy
+        >>> result = hierarchy.load("specs/single-loop.yaml").design()
+        >>> areas, links = result.to_pandas()
+        >>> float(areas.loc["estimate", "error"]) == result.scores.areas["estimate"].error
+        True
+        >>> list(links.index)
+        ['thermometer->estimate', 'estimate->thermometer']
+        """
+        from .notebook import design_tables
+
+        return design_tables(self)
+
+    def __repr__(self) -> str:
+        from .notebook import design_repr
+
+        return design_repr(self)
+
+    def _repr_html_(self) -> str:
+        from .notebook import design_html
+
+        return design_html(self)
+
 
 # ---------------------------------------------------------------------------
 # price form

@@ -89,6 +89,24 @@ def _figure(width, height):
     return fig
 
 
+def _given_axes(ax, most, fix):
+    """The Axes a caller passed as ``ax=`` as a list (``None`` when none
+    were given): one Axes, or a sequence of at most ``most``."""
+    if ax is None:
+        return None
+    axes = [ax] if hasattr(ax, "plot") else list(ax)
+    if not axes or len(axes) > most or not all(hasattr(a, "plot") for a in axes):
+        raise InputError(f"ax= takes one matplotlib Axes or a sequence of up to {most}; got {ax!r}",
+                         place="ax", fix=fix)
+    return axes
+
+
+def _returned(ax, axes):
+    """What a figure function returns when it drew on given axes: the one
+    Axes, or the list, as it was passed."""
+    return axes[0] if hasattr(ax, "plot") else axes
+
+
 def figure_bytes(fig, fmt="png", dpi=150) -> bytes:
     """A figure as the bytes of a .png, .svg or .pdf file; fixed metadata
     keep the bytes the same from run to run."""
@@ -211,7 +229,7 @@ def _silent_bounds(r, log):
     return min(lo, hi), max(lo, hi)
 
 
-def sweep_figure(study, show=None, log_y=False, kinds=None, units=None):
+def sweep_figure(study, show=None, log_y=False, kinds=None, units=None, ax=None):
     """Chosen quantities against the swept value, silent ranges shaded.
 
     Up to :data:`MAX_SHARED_LINKS` links share a panel per quantity; beyond
@@ -234,11 +252,22 @@ def sweep_figure(study, show=None, log_y=False, kinds=None, units=None):
         Link id -> ``"residual"`` or ``"prediction"``, for the colours.
     units : dict, optional
         Quantity -> unit text (see :func:`unit_label`).
+    ax : matplotlib.axes.Axes or sequence of Axes, optional
+        Draw onto these instead of a new figure: one Axes per panel, in the
+        order above (one quantity of up to :data:`MAX_SHARED_LINKS` links
+        is one panel). The title goes on the first panel.
 
     Returns
     -------
-    matplotlib.figure.Figure
+    matplotlib.figure.Figure, or the given Axes
         Shaded ranges carry the artist id ``silent:<link id>``.
+
+    Examples
+    --------
+    >>> import matplotlib.pyplot as plt
+    >>> fig, ax = plt.subplots()
+    >>> sweep_figure(study, ["objective"], ax=ax) is ax   # doctest: +SKIP
+    True
     """
     from matplotlib.transforms import blended_transform_factory
 
@@ -266,19 +295,30 @@ def sweep_figure(study, show=None, log_y=False, kinds=None, units=None):
             layout.append((f, [cols]))
     ncols = min(MULTIPLE_COLUMNS, max(len(p) for _, p in layout))
     grid_rows = sum(-(-len(p) // ncols) for _, p in layout)
-    width = 7.5 if ncols == 1 else 3.3 * ncols + 0.8
-    height = 0.9 + (2.3 if ncols == 1 else 2.0) * grid_rows
-    fig = _figure(width, height)
-    spec = fig.add_gridspec(grid_rows, ncols)
+    npanels = sum(len(p) for _, p in layout)
+    passed = ax  # (the loops below reuse the name)
+    given = _given_axes(ax, npanels, f"pass {npanels} Axes (one per panel) or show one quantity")
+    if given is not None and len(given) != npanels:
+        raise InputError(f"this sweep figure has {npanels} panel(s) ({', '.join(fields)}) but ax= gave "
+                         f"{len(given)}", place="ax", fix=f"pass {npanels} Axes, or choose fewer quantities (show=)")
+    if given is None:
+        width = 7.5 if ncols == 1 else 3.3 * ncols + 0.8
+        height = 0.9 + (2.3 if ncols == 1 else 2.0) * grid_rows
+        fig = _figure(width, height)
+        spec = fig.add_gridspec(grid_rows, ncols)
     used, r0, first = [], 0, None
     for f, panels in layout:
         nrows = -(-len(panels) // ncols)
-        # A panel of several series spans the row; small multiples fill the grid.
-        slots = [spec[r0, :]] if len(panels) == 1 else [spec[r0 + i // ncols, i % ncols] for i in range(len(panels))]
-        cells = []
-        for slot in slots:
-            cells.append(fig.add_subplot(slot, sharex=first))
-            first = first or cells[-1]
+        if given is not None:
+            cells = given[len(used):len(used) + len(panels)]
+        else:
+            # A panel of several series spans the row; small multiples fill the grid.
+            slots = ([spec[r0, :]] if len(panels) == 1
+                     else [spec[r0 + i // ncols, i % ncols] for i in range(len(panels))])
+            cells = []
+            for slot in slots:
+                cells.append(fig.add_subplot(slot, sharex=first))
+                first = first or cells[-1]
         for ax, cols in zip(cells, panels):
             for c in cols:
                 same = [d for d in cols if _kind_of(d, kinds) == _kind_of(c, kinds)]
@@ -313,6 +353,19 @@ def sweep_figure(study, show=None, log_y=False, kinds=None, units=None):
     if log:
         for ax in used:
             ax.set_xscale("log")
+    xlabel = f"{axis['path']} ({unit_of(axis['path'].rsplit('.', 1)[-1], units)})"
+    name = study.specs[0]["name"]
+    title = f"{name}: sweep of {axis['path']}"
+    if np.any(~ok):
+        title += f"\n({int(np.sum(~ok))} point(s) NOT converged: hollow markers)"
+    if given is not None:
+        # Someone else's axes: label each one, title the first unless a
+        # small multiple's own title is there.
+        for a in given:
+            a.set_xlabel(xlabel, fontsize=8)
+        if not given[0].get_title():
+            given[0].set_title(title, fontsize=9)
+        return _returned(passed, given)
     bottom = {}
     for ax in used:  # the lowest panel of each grid column carries the x label
         col = ax.get_subplotspec().colspan.start
@@ -322,11 +375,7 @@ def sweep_figure(study, show=None, log_y=False, kinds=None, units=None):
         if ax not in bottom.values():
             ax.tick_params(labelbottom=False)
     for ax in bottom.values():
-        ax.set_xlabel(f"{axis['path']} ({unit_of(axis['path'].rsplit('.', 1)[-1], units)})", fontsize=8)
-    name = study.specs[0]["name"]
-    title = f"{name}: sweep of {axis['path']}"
-    if np.any(~ok):
-        title += f"\n({int(np.sum(~ok))} point(s) NOT converged: hollow markers)"
+        ax.set_xlabel(xlabel, fontsize=8)
     fig.suptitle(title, fontsize=10)
     return fig
 
@@ -346,7 +395,7 @@ def _silent_matrix(study, lid, nx, ny):
     return m
 
 
-def phase_figure(study, show=None, units=None):
+def phase_figure(study, show=None, units=None, ax=None):
     """Which links are silent over a grid of two values, and one quantity.
 
     Left: the set of silent links at each grid point, one colour per set,
@@ -354,9 +403,21 @@ def phase_figure(study, show=None, units=None):
     ``boundary:<link>``). Right: the chosen quantity (default the objective)
     with the same boundaries. Points that did not converge are ringed.
 
+    Parameters
+    ----------
+    study : hierarchy.studies.Study
+        A phase map.
+    show : str, optional
+        The quantity of the right-hand panel (default ``"objective"``).
+    units : dict, optional
+        Quantity -> unit text (see :func:`unit_label`).
+    ax : matplotlib.axes.Axes or pair of Axes, optional
+        Draw onto these instead of a new figure: one Axes gets the silent
+        links (the left panel) alone, a pair gets both panels.
+
     Returns
     -------
-    matplotlib.figure.Figure
+    matplotlib.figure.Figure, or the given Axes
     """
     from matplotlib.colors import BoundaryNorm, ListedColormap
     from matplotlib.lines import Line2D
@@ -379,13 +440,21 @@ def phase_figure(study, show=None, units=None):
     code = np.array([sets.index(None if r.get("silent_links") is None else tuple(r["silent_links"]))
                      for r in study.rows], dtype=float).reshape(ny, nx)
     colours = ["#bbbbbb" if s is None else _colour(k) for k, s in enumerate(sets)]
-    fig = _figure(12, 5)
-    left, right = fig.subplots(1, 2)
+    passed = ax  # (the loops below reuse the name)
+    given = _given_axes(ax, 2, "pass one Axes (silent links) or two (silent links and the quantity)")
+    if given is None:
+        fig = _figure(12, 5)
+        left, right = fig.subplots(1, 2)
+    else:
+        fig = given[0].figure
+        left, right = given[0], (given[1] if len(given) == 2 else None)
+    panels = [left] if right is None else [left, right]
     X, Y = _edges(xs, xlog), _edges(ys, ylog)
     left.pcolormesh(X, Y, code, cmap=ListedColormap(colours), alpha=0.55,
                     norm=BoundaryNorm(np.arange(len(sets) + 1) - 0.5, len(sets)))
-    mesh = right.pcolormesh(X, Y, values.reshape(ny, nx), cmap="viridis", shading="flat")
-    fig.colorbar(mesh, ax=right, label=f"{show} ({unit_of(_field(show), units)})")
+    if right is not None:
+        mesh = right.pcolormesh(X, Y, values.reshape(ny, nx), cmap="viridis", shading="flat")
+        fig.colorbar(mesh, ax=right, label=f"{show} ({unit_of(_field(show), units)})")
     links = sorted({lid for r in study.rows for lid in (r.get("silent_links") or [])})
     handles = [Patch(color=c, alpha=0.55, label="(failed)" if s is None else ("none silent" if not s else
                      " + ".join(s) + " silent")) for s, c in zip(sets, colours)]
@@ -394,7 +463,7 @@ def phase_figure(study, show=None, units=None):
             m = _silent_matrix(study, lid, nx, ny)
             if np.nanmin(m) == np.nanmax(m):
                 continue  # silent everywhere (or nowhere): no boundary on this grid
-            for ax, colour in ((left, "black"), (right, "white")):
+            for ax, colour in zip(panels, ("black", "white")):
                 cs = ax.contour(xs, ys, m, levels=[0.5], colors=[colour],
                                 linestyles=["-", "--", ":", "-."][k % 4], linewidths=1.6)
                 cs.set_gid(f"boundary:{lid}")
@@ -403,25 +472,28 @@ def phase_figure(study, show=None, units=None):
     ok = np.array([bool(r.get("converged")) for r in study.rows])
     if np.any(~ok):
         gx, gy = np.meshgrid(xs, ys)
-        for ax in (left, right):
+        for ax in panels:
             ax.plot(gx.ravel()[~ok], gy.ravel()[~ok], "o", mfc="none", mec="red", ms=7, mew=1.3)
         handles.append(Line2D(
             [], [], ls="", marker="o", mfc="none", mec="red", label="not converged"))
-    for ax in (left, right):
+    for ax in panels:
         if xlog:
             ax.set_xscale("log")
         if ylog:
             ax.set_yscale("log")
         ax.set_xlabel(f"{ax_x['path']} ({unit_of(ax_x['path'].rsplit('.', 1)[-1], units)})")
         ax.set_ylabel(f"{ax_y['path']} ({unit_of(ax_y['path'].rsplit('.', 1)[-1], units)})")
-    left.set_title("silent links", fontsize=10)
-    right.set_title(show, fontsize=10)
+    left.set_title("silent links" if given is None else f"{study.specs[0]['name']}: silent links", fontsize=10)
+    if right is not None:
+        right.set_title(show, fontsize=10)
     left.legend(handles=handles, fontsize=7, loc="upper left", bbox_to_anchor=(0, -0.14), ncol=2)
+    if given is not None:
+        return _returned(passed, given)
     fig.suptitle(f"{study.specs[0]['name']}: phase map", fontsize=10)
     return fig
 
 
-def compare_figure(study, units=None):
+def compare_figure(study, units=None, ax=None):
     """Pareto fronts (weighted error against energy used) of every spec on one
     plot, and below, each spec's excess objective over the best at each
     budget, with the ranges where each spec wins shaded (``best:<label>``).
@@ -431,16 +503,32 @@ def compare_figure(study, units=None):
     table (margin over the runner-up's objective), so picture and table
     agree.
 
+    Parameters
+    ----------
+    study : hierarchy.studies.Study
+        A comparison.
+    units : dict, optional
+        Quantity -> unit text (see :func:`unit_label`).
+    ax : matplotlib.axes.Axes or pair of Axes, optional
+        Draw onto these instead of a new figure: one Axes gets the Pareto
+        fronts alone, a pair gets the fronts and the excess objectives.
+
     Returns
     -------
-    matplotlib.figure.Figure
+    matplotlib.figure.Figure, or the given Axes
     """
     labels = study.extra["labels"]
     log = study.axes[0]["scale"] == "log"
     totals = np.asarray(study.axes[0]["values"], float)
     n = len(totals)
-    fig = _figure(7.5, 7)
-    top, bottom = fig.subplots(2, 1, height_ratios=[3, 2])
+    passed = ax  # (the loops below reuse the name)
+    given = _given_axes(ax, 2, "pass one Axes (Pareto fronts) or two (fronts and excess objective)")
+    if given is None:
+        fig = _figure(7.5, 7)
+        top, bottom = fig.subplots(2, 1, height_ratios=[3, 2])
+    else:
+        top, bottom = given[0], (given[1] if len(given) == 2 else None)
+    panels = [top] if bottom is None else [top, bottom]
     objective = {}
     for k, lab in enumerate(labels):
         rows = study.rows[k * n:(k + 1) * n]
@@ -452,9 +540,10 @@ def compare_figure(study, units=None):
     best = np.nanmin(np.vstack([v for v, _ in objective.values()]), axis=0)
     for k, lab in enumerate(labels):
         v, ok = objective[lab]
-        _plot_series(bottom, totals, 100 * (v - best) / np.abs(v), ok, _colour(k), lab)
+        if bottom is not None:
+            _plot_series(bottom, totals, 100 * (v - best) / np.abs(v), ok, _colour(k), lab)
     for r in study.extra["best"]:
-        if r["best"] in labels:
+        if r["best"] in labels and bottom is not None:
             i0, i1 = list(totals).index(r["from"]), list(totals).index(r["to"])
             lo = _mid(totals[i0 - 1], totals[i0], log) if i0 > 0 else totals[i0]
             hi = _mid(totals[i1], totals[i1 + 1], log) if i1 + 1 < n else totals[i1]
@@ -464,29 +553,33 @@ def compare_figure(study, units=None):
     top.set_xlabel(f"energy used: power of the {'priced links' if by_price else 'varied budget'} "
                    f"({unit_of('used', units)})")
     top.set_ylabel(f"weighted error ({unit_of('weighted_error', units)})")
-    bottom.set_xlabel("price scale (every link price times this)" if by_price
-                      else f"total budget ({unit_of('total', units)})")
-    bottom.set_ylabel("objective above the best\n(% of the spec's own objective)")
-    if log:
-        top.set_xscale("log")
-        bottom.set_xscale("log")
-    for ax in (top, bottom):
+    if bottom is not None:
+        bottom.set_xlabel("price scale (every link price times this)" if by_price
+                          else f"total budget ({unit_of('total', units)})")
+        bottom.set_ylabel("objective above the best\n(% of the spec's own objective)")
+    for ax in panels:
+        if log:
+            ax.set_xscale("log")
         ax.grid(alpha=0.3)
         ax.legend(fontsize=8)
     title = "Pareto fronts: " + " vs ".join(labels)
     if any(not r.get("converged") for r in study.rows):
         title += "\n(hollow markers: NOT converged)"
+    if given is not None:
+        top.set_title(title, fontsize=9)
+        return _returned(passed, given)
     fig.suptitle(title, fontsize=10)
     return fig
 
 
-def study_figure(study, show=None, log_y=False, kinds=None, units=None):
-    """The figure of any study (sweep, phase map or comparison)."""
+def study_figure(study, show=None, log_y=False, kinds=None, units=None, ax=None):
+    """The figure of any study (sweep, phase map or comparison); ``ax`` as
+    in :func:`sweep_figure`, :func:`phase_figure` or :func:`compare_figure`."""
     if study.kind == "sweep":
-        return sweep_figure(study, show, log_y, kinds=kinds, units=units)
+        return sweep_figure(study, show, log_y, kinds=kinds, units=units, ax=ax)
     if study.kind == "phase":
-        return phase_figure(study, show, units=units)
-    return compare_figure(study, units=units)
+        return phase_figure(study, show, units=units, ax=ax)
+    return compare_figure(study, units=units, ax=ax)
 
 
 def save_study_plot(study, path, show=None, log_y=False, kinds=None, units=None) -> None:

@@ -601,6 +601,25 @@ def _figure(width, height):
     return fig
 
 
+def _renderer(fig):
+    """The renderer that measures text on ``fig`` (Agg canvases have one;
+    other backends build one on request)."""
+    get = getattr(fig.canvas, "get_renderer", None)
+    return get() if get is not None else fig._get_renderer()
+
+
+def _axes_inches(ax):
+    """Width and height of an Axes, in inches."""
+    box = ax.get_position()
+    return box.width * ax.figure.get_figwidth(), box.height * ax.figure.get_figheight()
+
+
+def _check_axes(ax):
+    if ax is not None and not hasattr(ax, "add_patch"):
+        raise InputError(f"ax= takes one matplotlib Axes; got {ax!r}", place="ax",
+                         fix="pass an Axes, e.g. from fig, ax = matplotlib.pyplot.subplots()")
+
+
 def _silent_words(data) -> str:
     """The legend's words for silent links: how many, and what was checked
     (the designer tests a silent link at the final design, or says it did not)."""
@@ -628,7 +647,7 @@ def _legend_handles(width_by, top_value, silent, width=MAX_WIDTH):
     ]
 
 
-def draw_circuit(result, spec=None, width_by="power"):
+def draw_circuit(result, spec=None, width_by="power", ax=None):
     """Draw a designed circuit as a layered diagram (encoding in the module docstring).
 
     Parameters
@@ -642,14 +661,18 @@ def draw_circuit(result, spec=None, width_by="power"):
     width_by : {"power", "share"}
         What a link's width is proportional to: its power, or its largest share
         of a budget (links outside every budget are then drawn thinnest).
+    ax : matplotlib.axes.Axes, optional
+        Draw onto this Axes instead of a new figure (fonts follow its size;
+        the legend goes below it and the table of unlabelled links to its
+        right).
 
     Returns
     -------
-    matplotlib.figure.Figure
-        With ``fig.hierarchy_links`` (link id -> its FancyArrowPatch),
-        ``fig.hierarchy_nodes`` (node name -> its box patch),
-        ``fig.hierarchy_labels`` (link id -> its label on the drawing) and
-        ``fig.hierarchy_table`` (the links listed in the table beside
+    matplotlib.figure.Figure, or the given Axes
+        With ``hierarchy_links`` (link id -> its FancyArrowPatch),
+        ``hierarchy_nodes`` (node name -> its box patch),
+        ``hierarchy_labels`` (link id -> its label on the drawing) and
+        ``hierarchy_table`` (the links listed in the table beside
         instead, strongest first) for scripts and tests.
 
     Examples
@@ -662,6 +685,7 @@ def draw_circuit(result, spec=None, width_by="power"):
     """
     if width_by not in ("power", "share"):
         raise InputError(f"unknown width_by {width_by!r}", place="width_by", fix="use 'power' or 'share'")
+    _check_axes(ax)
     data, spec = _as_dict(result, spec)
     if width_by == "share" and not data.get("budgets"):
         raise InputError("the design has no budgets, so no link has a share of one", place="width_by",
@@ -693,8 +717,10 @@ def draw_circuit(result, spec=None, width_by="power"):
     x0, x1 = min(xs) - 1.5, max(xs) + 1.0
     y0, y1 = min(ys) - 1.0, max(ys) + 0.9
     # The drawing keeps its proportions (one data unit = `scale` inches) and
-    # is shrunk to fit 16 x 14 inches; fonts shrink with it, to 60% at least.
-    scale = min(1.0, 16.0 / (x1 - x0), 14.0 / (y1 - y0))
+    # is shrunk to fit 16 x 14 inches (or the given Axes); fonts shrink with
+    # it, to 60% at least.
+    room = (16.0, 14.0) if ax is None else _axes_inches(ax)
+    scale = min(1.0, room[0] / (x1 - x0), room[1] / (y1 - y0))
     font = _FONT * max(scale, 0.6)
     link_font = _LINK_FONT * max(scale, 0.6)
     if scale < 1.0 and font > _FONT * scale:  # bigger letters need bigger boxes
@@ -708,16 +734,22 @@ def draw_circuit(result, spec=None, width_by="power"):
     legend_in = 0.75
     table_font = max(link_font, 6.0)
     draw_w, draw_h = (x1 - x0) * scale, (y1 - y0) * scale
-    fig_w = max(draw_w + 0.3, 6.0)
-    fig_h = max(draw_h + title_in + legend_in, 4.5)
-    fig = _figure(fig_w, fig_h)
-    left = (fig_w - draw_w) / 2
-    ax = fig.add_axes([left / fig_w, legend_in / fig_h, draw_w / fig_w, draw_h / fig_h])
+    given = ax is not None
+    if given:
+        fig = ax.figure
+    else:
+        fig_w = max(draw_w + 0.3, 6.0)
+        fig_h = max(draw_h + title_in + legend_in, 4.5)
+        fig = _figure(fig_w, fig_h)
+        left = (fig_w - draw_w) / 2
+        ax = fig.add_axes([left / fig_w, legend_in / fig_h, draw_w / fig_w, draw_h / fig_h])
     ax.set_xlim(x0, x1)
     ax.set_ylim(y0, y1)
     ax.set_aspect("equal")  # arc bows and label offsets assume equal axes
     ax.axis("off")
-    renderer = fig.canvas.get_renderer()
+    if given:
+        ax.apply_aspect()  # so the labels below are measured where they will be drawn
+    renderer = _renderer(fig)
 
     y_of = {level: pos[nodes[0]][1] for level, nodes in rows.items()}
     taken = []
@@ -762,7 +794,20 @@ def draw_circuit(result, spec=None, width_by="power"):
         arrows[lid] = arrow
 
     placed, left_out = _place_labels(ax, renderer, data, pos, arcs, width, width_by, link_font, taken)
-    if left_out:
+    handles = _legend_handles(width_by, top_value, _silent_words(data), MAX_WIDTH * max(scale, 0.5))
+    if given:
+        # Someone else's figure keeps its size: the table sits right of the
+        # drawing, the legend below it and the title above it.
+        if left_out:
+            box = ax.get_position()
+            table_in = _table_width(data, left_out, table_font)
+            _side_table(fig, [box.x1 + 0.01, box.y0, table_in / fig.get_figwidth(), box.height], data, left_out,
+                        table_font)
+        ax.legend(handles=handles, loc="upper center", bbox_to_anchor=(0.5, 0.0), ncol=2, frameon=False,
+                  fontsize=font * 0.9, handlelength=3.2)
+        ax.set_title(title, fontsize=font * 1.1, linespacing=1.35, gid="title")
+        target = ax
+    if left_out and not given:
         # Widen the figure for the table; the drawing keeps its size in
         # inches, so the labels placed above stay where they were put.
         table_in = _table_width(data, left_out, table_font)
@@ -773,16 +818,17 @@ def draw_circuit(result, spec=None, width_by="power"):
         _side_table(fig, [(left + draw_w + 0.1) / fig_w, legend_in / fig_h, (table_in - 0.1) / fig_w,
                           draw_h / fig_h], data, left_out, table_font)
 
-    fig.legend(handles=_legend_handles(width_by, top_value, _silent_words(data), MAX_WIDTH * max(scale, 0.5)),
-               loc="lower center", bbox_to_anchor=(0.5, 0.02), ncol=2, frameon=False, fontsize=font * 0.9,
-               handlelength=3.2)
-    fig.text(0.5, 1 - 0.12 / fig_h, title, ha="center", va="top", fontsize=font * 1.1, linespacing=1.35,
-             gid="title")
-    fig.hierarchy_links = arrows
-    fig.hierarchy_nodes = boxes
-    fig.hierarchy_labels = placed
-    fig.hierarchy_table = left_out
-    return fig
+    if not given:
+        fig.legend(handles=handles, loc="lower center", bbox_to_anchor=(0.5, 0.02), ncol=2, frameon=False,
+                   fontsize=font * 0.9, handlelength=3.2)
+        fig.text(0.5, 1 - 0.12 / fig_h, title, ha="center", va="top", fontsize=font * 1.1, linespacing=1.35,
+                 gid="title")
+        target = fig
+    target.hierarchy_links = arrows
+    target.hierarchy_nodes = boxes
+    target.hierarchy_labels = placed
+    target.hierarchy_table = left_out
+    return target
 
 
 def _node_order(g):
@@ -793,7 +839,7 @@ def _node_order(g):
     return _order_rows(g, rows, size, sweeps=4), top
 
 
-def draw_matrix(result, spec=None):
+def draw_matrix(result, spec=None, ax=None):
     """Draw a designed circuit as a link-power matrix: the view that scales.
 
     Rows are senders and columns receivers, both ordered by level (sensors
@@ -804,11 +850,21 @@ def draw_matrix(result, spec=None):
     logarithmic scale; a silent link's cell is grey with a cross. Empty cells
     have no link.
 
+    Parameters
+    ----------
+    result : DesignResult or dict
+        A design, or the dict of a result JSON file.
+    spec : Spec, optional
+        The spec the result was designed from (it only supplies the graph).
+    ax : matplotlib.axes.Axes, optional
+        Draw onto this Axes instead of a new figure (the two colour scales
+        take room below it).
+
     Returns
     -------
-    matplotlib.figure.Figure
-        With ``fig.hierarchy_cells`` (link id -> (row, column)) and
-        ``fig.hierarchy_order`` (the node order of rows and columns).
+    matplotlib.figure.Figure, or the given Axes
+        With ``hierarchy_cells`` (link id -> (row, column)) and
+        ``hierarchy_order`` (the node order of rows and columns).
 
     Examples
     --------
@@ -820,13 +876,15 @@ def draw_matrix(result, spec=None):
     from matplotlib.colors import LinearSegmentedColormap, LogNorm, to_rgb
     from matplotlib.ticker import NullFormatter
 
+    _check_axes(ax)
     data, spec = _as_dict(result, spec)
     g = result_graph(data, spec)
     rows, top = _node_order(g)
     order = [n for nodes in rows.values() for n in nodes]
     index = {n: i for i, n in enumerate(order)}
     n = len(order)
-    cell = min(0.32, max(0.11, 9.0 / n))  # inches
+    given = ax is not None
+    cell = min(0.32, max(0.11, 9.0 / n)) if not given else min(0.32, min(_axes_inches(ax)) / n)  # inches
     font = min(8.0, cell * 72 * 0.78)
     name_in = 0.6 * font / 72 * max(len(s) for s in order) + 0.15  # tick labels of node names
     level_in = 0.6 * font / 72 * (9 if top + 1 in rows else len(f"L{top}")) + 0.2  # "unreached" or "L12"
@@ -836,10 +894,13 @@ def draw_matrix(result, spec=None):
     bar_in = 0.9  # the two colour scales and their labels
     left = name_in + 0.45  # names, then the "sender" label
     bottom = bar_in + name_in + 0.45
-    fig_w = max(left + side + level_in + 0.2, 6.0)
-    fig_h = bottom + side + level_in + title_in
-    fig = _figure(fig_w, fig_h)
-    ax = fig.add_axes([left / fig_w, bottom / fig_h, side / fig_w, side / fig_h])
+    if given:
+        fig = ax.figure
+    else:
+        fig_w = max(left + side + level_in + 0.2, 6.0)
+        fig_h = bottom + side + level_in + title_in
+        fig = _figure(fig_w, fig_h)
+        ax = fig.add_axes([left / fig_w, bottom / fig_h, side / fig_w, side / fig_h])
 
     live = [float(r["power"]) for r in data["links"].values() if not r.get("silent") and float(r["power"]) > 0]
     hi = max(live, default=1.0)
@@ -889,25 +950,37 @@ def draw_matrix(result, spec=None):
     from matplotlib.cm import ScalarMappable
 
     for k, (kind, label) in enumerate(((RESIDUAL, "residual power (up)"), (PREDICTION, "prediction power (down)"))):
-        width = (fig_w - 1.6) / 2
-        cax = fig.add_axes([(0.5 + k * (width + 0.6)) / fig_w, 0.45 / fig_h, width / fig_w, 0.14 / fig_h])
-        bar = fig.colorbar(ScalarMappable(norm=norm, cmap=maps[kind]), cax=cax, orientation="horizontal")
+        mappable = ScalarMappable(norm=norm, cmap=maps[kind])
+        if given:  # side by side below the names and the "receiver" label, outside the given Axes
+            below = -(name_in + 0.6) / _axes_inches(ax)[1]
+            cax = ax.inset_axes([0.55 * k, below, 0.45, 0.14 / _axes_inches(ax)[1]])
+            bar = fig.colorbar(mappable, cax=cax, orientation="horizontal")
+        else:
+            width = (fig_w - 1.6) / 2
+            cax = fig.add_axes([(0.5 + k * (width + 0.6)) / fig_w, 0.45 / fig_h, width / fig_w, 0.14 / fig_h])
+            bar = fig.colorbar(mappable, cax=cax, orientation="horizontal")
         bar.set_label(label + ", model units", fontsize=8)
         bar.ax.tick_params(labelsize=7)
         bar.ax.xaxis.set_minor_formatter(NullFormatter())  # labelled minor ticks collide on a short scale
-    fig.text(0.5, 1 - 0.12 / fig_h, title + "\nlink powers: row sends to column; grey x = silent",
-             ha="center", va="top", fontsize=10, linespacing=1.35, gid="title")
-    fig.hierarchy_cells = cells
-    fig.hierarchy_order = order
-    return fig
+    heading = title + "\nlink powers: row sends to column; grey x = silent"
+    if given:
+        ax.set_title(heading, fontsize=9, linespacing=1.35, gid="title", pad=level_in * 72)
+        target = ax
+    else:
+        fig.text(0.5, 1 - 0.12 / fig_h, heading, ha="center", va="top", fontsize=10, linespacing=1.35, gid="title")
+        target = fig
+    target.hierarchy_cells = cells
+    target.hierarchy_order = order
+    return target
 
 
-def draw(result, spec=None, view="auto", width_by="power"):
+def draw(result, spec=None, view="auto", width_by="power", ax=None):
     """The picture of a design in the chosen view.
 
     ``view`` is ``"circuit"`` (the layered drawing, :func:`draw_circuit`),
     ``"matrix"`` (:func:`draw_matrix`) or ``"auto"``: the drawing up to
-    :data:`MAX_DRAWN_AREAS` areas, the matrix above.
+    :data:`MAX_DRAWN_AREAS` areas, the matrix above. With ``ax`` the picture
+    is drawn onto that matplotlib Axes, which is returned.
 
     Examples
     --------
@@ -919,8 +992,8 @@ def draw(result, spec=None, view="auto", width_by="power"):
     if view == "auto":
         view = "circuit" if len(data["areas"]) <= MAX_DRAWN_AREAS else "matrix"
     if view == "matrix":
-        return draw_matrix(data, spec)
-    return draw_circuit(data, spec, width_by=width_by)
+        return draw_matrix(data, spec, ax=ax)
+    return draw_circuit(data, spec, width_by=width_by, ax=ax)
 
 
 # -- files -------------------------------------------------------------------

@@ -74,10 +74,8 @@ from __future__ import annotations
 
 import concurrent.futures as cf
 import contextlib
-import csv
 import difflib
 import hashlib
-import io
 import json
 import math
 import os
@@ -706,7 +704,7 @@ def _load_part(folder: Path, key: str):
 
 
 def _progress(total, initial, label, enabled):
-    from tqdm import tqdm
+    from tqdm.auto import tqdm
 
     return tqdm(total=total, initial=initial, desc=label, unit="point", file=sys.stderr,
                 disable=not enabled, dynamic_ncols=True, leave=True)
@@ -868,12 +866,13 @@ class Study:
         return _clean(d)
 
     def csv_text(self) -> str:
-        buf = io.StringIO()
-        w = csv.writer(buf, lineterminator="\n")
-        w.writerow(self.columns)
-        for r in self.rows:
-            w.writerow([_csv_cell(r.get(c)) for c in self.columns])
-        return buf.getvalue()
+        """The table as CSV text (written with pandas; cells as
+        :func:`_csv_cell` spells them, so floats keep every digit)."""
+        import pandas as pd
+
+        frame = pd.DataFrame([[_csv_cell(r.get(c)) for c in self.columns] for r in self.rows],
+                             columns=self.columns, dtype=object)
+        return frame.to_csv(index=False, lineterminator="\n")
 
     def write(self, base) -> list:
         """Write ``<base>.csv`` and ``<base>.json`` atomically; returns the paths."""
@@ -884,6 +883,54 @@ class Study:
         atomic_write_text(csv_path, self.csv_text())
         write_json(json_path, self.to_dict())
         return [csv_path, json_path]
+
+    def to_pandas(self):
+        """The table as a pandas DataFrame, one row per point in the study's
+        order (row ``i`` is ``rows[i]``), one column per entry of
+        :attr:`columns` (see :func:`hierarchy.notebook.study_frame`).
+
+        Examples
+        --------
+        >>> import hierarchy
+        >>> from hierarchy.studies import sweep
+        >>> spec = hierarchy.load_spec("specs/single-loop.yaml")
+        >>> st = sweep(spec, "links[thermometer->estimate].price", [0.1, 1.0], workers=1)
+        >>> st.to_pandas()["links[thermometer->estimate].price"].tolist()
+        [0.1, 1.0]
+        """
+        from .notebook import study_frame
+
+        return study_frame(self)
+
+    def to_xarray(self):
+        """The study as an xarray Dataset with one dimension per swept value
+        (a sweep: its path; a phase map: the y path and the x path; a
+        comparison: ``spec`` and ``budget``), coordinates labelled with the
+        study's values (see :func:`hierarchy.notebook.study_dataset`).
+
+        Examples
+        --------
+        >>> import hierarchy
+        >>> from hierarchy.studies import sweep
+        >>> spec = hierarchy.load_spec("specs/single-loop.yaml")
+        >>> st = sweep(spec, "links[thermometer->estimate].price", [0.1, 1.0], workers=1)
+        >>> ds = st.to_xarray()
+        >>> ds["objective"].dims
+        ('links[thermometer->estimate].price',)
+        """
+        from .notebook import study_dataset
+
+        return study_dataset(self)
+
+    def __repr__(self) -> str:
+        from .notebook import study_repr
+
+        return study_repr(self)
+
+    def _repr_html_(self) -> str:
+        from .notebook import study_html
+
+        return study_html(self)
 
 
 def _csv_cell(v):

@@ -114,3 +114,53 @@ def test_compare_plot_divides_as_the_table_does(tmp_path):
         assert all(lines[r["best"]][i] == pytest.approx(0.0, abs=1e-12) for i in span)
         checked += 1
     assert checked
+
+
+# -- ax=: drawing onto someone else's axes -------------------------------------------
+
+
+def _axes(n=1):
+    from matplotlib.figure import Figure
+
+    fig = Figure()
+    return fig, [fig.add_subplot(n, 1, k + 1) for k in range(n)]
+
+
+def test_sweep_draws_on_the_given_axes(budget_sweep):
+    spec, study = budget_sweep
+    fig, (ax,) = _axes()
+    assert plots.sweep_figure(study, ["objective"], ax=ax) is ax
+    assert fig.axes == [ax]  # nothing added beside it
+    drawn = next(ln for ln in ax.lines if ln.get_label() == "objective")
+    assert list(drawn.get_ydata()) == study.column("objective")
+    assert ax.get_xlabel().startswith("budgets[upward].total")
+    # Small multiples take one Axes per panel, in the figure's order.
+    kinds = {l.id: l.kind for l in spec.links}
+    show = [f"links[{lid}].power" for lid in kinds]
+    fig, many = _axes(len(show))
+    assert plots.sweep_figure(study, show, kinds=kinds, ax=many) == many
+    for a, col in zip(many, show):
+        assert [ln.get_label() for ln in a.lines if not ln.get_label().startswith("_")] == [col]
+    with pytest.raises(InputError, match="panel"):
+        plots.sweep_figure(study, show, ax=many[0])
+
+
+def test_phase_and_compare_draw_on_the_given_axes(tmp_path):
+    spec = load_spec(ROOT / "specs/single-loop.yaml")
+    price = "links[estimate->thermometer].price"
+    phase = studies.phase_map(spec, "links[estimate->thermometer].noise", [0.01, 0.2], price, [0.002, 0.2],
+                              QUICK, workers=1, warm=False)
+    fig, (ax,) = _axes()
+    assert plots.phase_figure(phase, ax=ax) is ax
+    assert len(ax.collections) >= 1 and fig.axes == [ax]
+    fig, pair = _axes(2)
+    assert plots.study_figure(phase, ax=pair) == pair
+    assert pair[1].get_title() == "objective"
+    specs = [load_spec(ROOT / "specs/compare-flat.yaml"), load_spec(ROOT / "specs/compare-predictive.yaml")]
+    cmp = studies.compare(specs, [0.05, 2.0], QUICK, log=True, workers=1, warm=False)
+    fig, (ax,) = _axes()
+    assert plots.compare_figure(cmp, ax=ax) is ax
+    fronts = {ln.get_label() for ln in ax.lines} & set(cmp.extra["labels"])
+    assert fronts == set(cmp.extra["labels"])
+    with pytest.raises(InputError, match="ax="):
+        plots.compare_figure(cmp, ax=[ax, ax, ax])

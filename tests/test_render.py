@@ -378,3 +378,28 @@ def test_the_legend_claims_only_what_was_checked():
     data["links"]["station-view->probe"]["silent_verdict"] = "untested"
     legend = [t.get_text() for t in draw_circuit(data).legends[0].get_texts()]
     assert "silent (sends nothing): 2 link(s), 1 not tested" in legend
+
+
+@pytest.mark.parametrize("view", ["circuit", "matrix"])
+def test_the_drawing_goes_onto_a_given_axes(view):
+    from matplotlib.figure import Figure
+
+    from hierarchy.render import draw
+
+    from matplotlib.backends.backend_agg import FigureCanvasAgg
+
+    fig = Figure(figsize=(6, 5))
+    FigureCanvasAgg(fig)
+    ax = fig.add_subplot()
+    data = fake_result("two-senses")
+    assert draw(data, view=view, ax=ax) is ax
+    if view == "circuit":
+        assert set(ax.hierarchy_links) == set(data["links"])
+        assert all(a.axes is ax for a in ax.hierarchy_links.values())
+        assert "converged" in ax.get_title()
+    else:
+        assert set(ax.hierarchy_cells) == set(data["links"])
+        assert ax.images and "link powers" in ax.get_title()
+    fig.canvas.draw()  # the whole picture renders
+    with pytest.raises(InputError, match="Axes"):
+        draw_circuit(data, ax="not an axes")
