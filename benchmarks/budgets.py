@@ -48,7 +48,7 @@ FD_RTOL = 1e-4
 
 def circuit_text(areas: int, kind: str) -> str:
     """Spec text of a generated circuit with the ``total`` or ``overlap`` budgets."""
-    from hierarchy.generate import generate_spec_text
+    from hierarchy.spec.generate import generate_spec_text
     from hierarchy.spec import parse_spec
 
     levels = max(areas // 2, 1)
@@ -85,9 +85,9 @@ def child_budget(path: str) -> dict:
 def child_price(path: str, mu: dict) -> dict:
     import numpy as np
 
-    from hierarchy.allocation import constraints
+    from hierarchy.design.allocation import constraints
     from hierarchy.design import design_prices
-    from hierarchy.problem import Problem
+    from hierarchy.design.problem import Problem
     from hierarchy.spec import load_spec
 
     spec = load_spec(path)

@@ -32,10 +32,10 @@ sys.path.insert(0, os.path.dirname(os.path.dirname(os.path.abspath(__file__))))
 
 from _env import blas_header, code_version  # noqa: E402
 
-from hierarchy.evaluate import flat_cost_and_gradient  # noqa: E402
-from hierarchy.generate import generate_spec_text  # noqa: E402
-from hierarchy.model import PREDICTION  # noqa: E402
-from hierarchy.problem import Problem  # noqa: E402
+from hierarchy.loop.evaluate import flat_cost_and_gradient  # noqa: E402
+from hierarchy.spec.generate import generate_spec_text  # noqa: E402
+from hierarchy.spec.model import PREDICTION  # noqa: E402
+from hierarchy.design.problem import Problem  # noqa: E402
 from hierarchy.spec import parse_spec  # noqa: E402
 
 

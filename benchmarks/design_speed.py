@@ -43,8 +43,8 @@ sys.path.insert(0, ROOT)
 import hierarchy  # noqa: E402
 from _env import blas_header, code_version  # noqa: E402
 from hierarchy.design import Options, design_prices  # noqa: E402
-from hierarchy.evaluate import score  # noqa: E402
-from hierarchy.problem import Problem  # noqa: E402
+from hierarchy.loop.evaluate import score  # noqa: E402
+from hierarchy.design.problem import Problem  # noqa: E402
 from hierarchy.spec import load_spec  # noqa: E402
 
 CIRCUITS = (("two-level", os.path.join(ROOT, "specs", "two-level.yaml")),

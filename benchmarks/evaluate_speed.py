@@ -40,10 +40,10 @@ sys.path.insert(0, os.path.dirname(os.path.dirname(os.path.abspath(__file__))))
 
 import hierarchy  # noqa: E402
 from _env import blas_header, code_version  # noqa: E402
-from hierarchy import model  # noqa: E402
-from hierarchy.closedloop import Layout, assemble  # noqa: E402
-from hierarchy.evaluate import cost_and_gradient, loop_radius, score  # noqa: E402
-from hierarchy.gains import Gains, gain_shapes  # noqa: E402
+from hierarchy.spec import model  # noqa: E402
+from hierarchy.loop.closedloop import Layout, assemble  # noqa: E402
+from hierarchy.loop.evaluate import cost_and_gradient, loop_radius, score  # noqa: E402
+from hierarchy.loop.gains import Gains, gain_shapes  # noqa: E402
 
 SIZES = (16, 32, 64, 128, 256)
 GOAL_SIZE, GOAL_RATIO = 128, 3.0

@@ -30,8 +30,8 @@ sys.path.insert(0, os.path.dirname(os.path.dirname(os.path.abspath(__file__))))
 from _env import blas_header, code_version  # noqa: E402
 
 from hierarchy.design import design  # noqa: E402
-from hierarchy.floor import information_floor  # noqa: E402
-from hierarchy.generate import generate_spec_text  # noqa: E402
+from hierarchy.design.floor import information_floor  # noqa: E402
+from hierarchy.spec.generate import generate_spec_text  # noqa: E402
 from hierarchy.spec import load_spec, parse_spec  # noqa: E402
 
 ROOT = Path(__file__).resolve().parent.parent

@@ -47,10 +47,10 @@ sys.path.insert(0, str(ROOT / "benchmarks"))
 from _env import blas_header, code_version  # noqa: E402
 
 from hierarchy.design import AGREE_RTOL, Options, design  # noqa: E402
-from hierarchy.generate import generate_spec_text  # noqa: E402
+from hierarchy.spec.generate import generate_spec_text  # noqa: E402
 from hierarchy.spec import load_spec, parse_spec  # noqa: E402
 from hierarchy.studies import compare, grid, set_value  # noqa: E402
-from hierarchy.subcircuit import embed, without_predictions  # noqa: E402
+from hierarchy.design.subcircuit import embed, without_predictions  # noqa: E402
 
 GOAL = 1e-4
 BASELINE = "71e4662"

@@ -58,7 +58,7 @@ DENSITY, SEED = 0.175, 0
 
 
 def spec_text(areas: int, budgets: bool = False) -> str:
-    from hierarchy.generate import generate_spec_text
+    from hierarchy.spec.generate import generate_spec_text
 
     return generate_spec_text(areas=areas, levels=max(areas // 2, 1), density=DENSITY, seed=SEED,
                               area_dim=2, budgets=budgets)
@@ -97,8 +97,8 @@ def child(job: dict) -> dict:
     import scipy.linalg as sla
 
     from hierarchy.design import Options, design_budgets, design_prices
-    from hierarchy.evaluate import score
-    from hierarchy.problem import Problem
+    from hierarchy.loop.evaluate import score
+    from hierarchy.design.problem import Problem
     from hierarchy.spec import parse_spec
 
     spec = parse_spec(spec_text(job["areas"], job.get("budgets", False)))
@@ -158,7 +158,7 @@ def profile_lines(areas: int) -> list:
     import io
     import pstats
 
-    from hierarchy.problem import Problem
+    from hierarchy.design.problem import Problem
     from hierarchy.spec import parse_spec
 
     prob = Problem(parse_spec(spec_text(areas)))

@@ -10,15 +10,15 @@ Typical use::
 
 __version__ = "0.1.0"
 
-from .circuit import Circuit
-from .errors import GainsError, HierarchyError, InputError, SpecError, UnstableError
-from .floor import Floor, information_floor
-from .gains import Gains, load_gains, save_gains
+from hierarchy.circuit import Circuit
+from hierarchy.errors import GainsError, HierarchyError, InputError, SpecError, UnstableError
+from hierarchy.design.floor import Floor, information_floor
+from hierarchy.loop.gains import Gains, load_gains, save_gains
 
 
 def load_spec(path):
     """Read and validate a spec file (see :func:`hierarchy.spec.load_spec`)."""
-    from .spec import load_spec as _load
+    from hierarchy.spec import load_spec as _load
 
     return _load(path)
 
@@ -37,14 +37,14 @@ def load(path) -> Circuit:
 
 def evaluate(spec, gains=None):
     """Exact stationary scores (see :func:`hierarchy.evaluate.evaluate`)."""
-    from .evaluate import evaluate as _evaluate
+    from hierarchy.loop.evaluate import evaluate as _evaluate
 
     return _evaluate(spec, gains)
 
 
 def design(spec, options=None, start=None, compare_unpinned=True):
     """Optimal gains (see :func:`hierarchy.design.design`)."""
-    from .design import design as _design
+    from hierarchy.design import design as _design
 
     return _design(spec, options, start, compare_unpinned)
 

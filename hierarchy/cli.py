@@ -7,7 +7,7 @@ import argparse
 import contextlib
 import sys
 
-from .errors import HierarchyError, InputError
+from hierarchy.errors import HierarchyError, InputError
 
 EXIT_USAGE = 2
 #: A command that could not finish (a failed design, memory ran out).
@@ -18,7 +18,7 @@ NUMERIC_COMMANDS = {"evaluate", "simulate", "design", "sweep", "phase", "compare
 
 class _Parser(argparse.ArgumentParser):
     def error(self, message):  # argparse's own errors: same status, no traceback
-        from .errors import terminal_safe
+        from hierarchy.errors import terminal_safe
 
         self.print_usage(sys.stderr)
         print(terminal_safe(f"error: {message}"), file=sys.stderr)
@@ -26,13 +26,13 @@ class _Parser(argparse.ArgumentParser):
 
 
 def _load(path):
-    from . import load
+    from hierarchy import load
 
     return load(path)
 
 
 def _gains(circuit, path):
-    from .gains import load_gains
+    from hierarchy.loop.gains import load_gains
 
     return None if path is None else load_gains(path, circuit.spec)
 
@@ -49,7 +49,7 @@ PROGRESS_SECONDS = 5.0
 def _check_resources(args, specs, evaluate_only=False, processes=1) -> None:
     """Refuse (unless ``--force``) work beyond the machine's memory; say on
     stderr when one evaluation alone is slow, before the work starts."""
-    from .resources import check_memory, estimate, fmt_bytes, fmt_seconds
+    from hierarchy.resources import check_memory, estimate, fmt_bytes, fmt_seconds
 
     needs = [estimate(spec, evaluate_only) for spec in specs]
     worst = max(needs, key=lambda n: n.memory)
@@ -85,7 +85,7 @@ class _DesignProgress:
     def _run(self):
         import time
 
-        from .problem import EVALUATIONS
+        from hierarchy.design.problem import EVALUATIONS
 
         t0, n0 = time.monotonic(), EVALUATIONS[0]
         while not self._done.wait(PROGRESS_SECONDS):
@@ -104,7 +104,7 @@ def _progress_wanted(args) -> bool:
 
 
 def cmd_check(args) -> int:
-    from .circuit import by_level
+    from hierarchy.graph import by_level
 
     c = _load(args.spec)
     spec = c.spec
@@ -147,7 +147,7 @@ def cmd_check(args) -> int:
         print(f"budget {b.name}: total {b.total:g} over {len(b.links)} link(s)"
               + (", " + ", ".join(extra) if extra else "") + (" (switches them off)" if b.total == 0 else ""))
     if spec.units is not None:
-        from .units import describe
+        from hierarchy.spec.units import describe
 
         print(f"units: {describe(spec.units)}")
     _print_warnings(c)
@@ -155,9 +155,9 @@ def cmd_check(args) -> int:
 
 
 def cmd_evaluate(args) -> int:
-    from .evaluate import evaluate
-    from .gains import with_pins
-    from .results import scores_text, scores_to_dict, write_json
+    from hierarchy.loop.evaluate import evaluate
+    from hierarchy.loop.gains import with_pins
+    from hierarchy.report.results import scores_text, scores_to_dict, write_json
 
     c = _load(args.spec)
     _check_resources(args, [c.spec], evaluate_only=True)
@@ -172,9 +172,9 @@ def cmd_evaluate(args) -> int:
 
 
 def cmd_simulate(args) -> int:
-    from .evaluate import evaluate
-    from .results import fmt, table, write_json
-    from .simulate import compare, simulate
+    from hierarchy.loop.evaluate import evaluate
+    from hierarchy.report.results import fmt, table, write_json
+    from hierarchy.loop.simulate import compare, simulate
 
     c = _load(args.spec)
     _check_resources(args, [c.spec], evaluate_only=True)
@@ -200,14 +200,14 @@ def cmd_simulate(args) -> int:
 
 
 def cmd_design(args) -> int:
-    from .design import Options
-    from .gains import save_gains
-    from .results import result_text, write_json
+    from hierarchy.design import Options
+    from hierarchy.loop.gains import save_gains
+    from hierarchy.report.results import result_text, write_json
 
     c = _load(args.spec)
     start = _gains(c, args.start)
     if args.plot:  # a bad picture path is refused before the design runs
-        from .render import check_path
+        from hierarchy.report.drawing import check_path
 
         check_path(args.plot)
     _check_resources(args, [c.spec])
@@ -223,7 +223,7 @@ def cmd_design(args) -> int:
         save_gains(args.gains, result.gains, c.spec, note=note)
         print(f"wrote {args.gains}")
     if args.plot:
-        from .render import save_circuit
+        from hierarchy.report.drawing import save_circuit
 
         save_circuit(result, args.plot)
         print(f"wrote {args.plot}")
@@ -234,7 +234,7 @@ def cmd_design(args) -> int:
 def cmd_render(args) -> int:
     import os
 
-    from .render import read_result, save_circuit
+    from hierarchy.report.drawing import read_result, save_circuit
 
     out = _render_output(args)
     data = read_result(args.result)
@@ -248,8 +248,8 @@ def cmd_render(args) -> int:
 
 
 def cmd_report(args) -> int:
-    from .render import read_result
-    from .report import check_report_path, save_report
+    from hierarchy.report.drawing import read_result
+    from hierarchy.report.page import check_report_path, save_report
 
     check_report_path(args.output)
     data = read_result(args.result)
@@ -260,7 +260,7 @@ def cmd_report(args) -> int:
 
 
 def cmd_explain(args) -> int:
-    from .results import explain_text
+    from hierarchy.report.results import explain_text
 
     print(explain_text(" ".join(args.word) if args.word else None))
     return 0
@@ -288,9 +288,9 @@ def _study_setup(args, specs, kind, show=(), coords=()):
     options, output base, plot path and the columns asked for."""
     import os
 
-    from .design import Options
-    from .plots import check_plot_path
-    from .studies import check_columns, output_base
+    from hierarchy.design import Options
+    from hierarchy.report.plots import check_plot_path
+    from hierarchy.studies import check_columns, output_base
 
     base = output_base(args.out or f"{os.path.splitext(os.path.basename(args.specs[0]))[0]}-{kind}")
     plot = None if args.no_plot else (args.plot or f"{base}.png")
@@ -302,8 +302,8 @@ def _study_setup(args, specs, kind, show=(), coords=()):
 
 
 def _study_finish(args, study, base, plot, show=None, kinds=None) -> int:
-    from .plots import save_study_plot
-    from .studies import study_text
+    from hierarchy.report.plots import save_study_plot
+    from hierarchy.studies import study_text
 
     print(study_text(study, show))
     print(f"\nwrote {base}.csv and {base}.json (finished points kept in {base}.parts/)")
@@ -319,13 +319,13 @@ def _run_kw(args) -> dict:
 
 
 def cmd_sweep(args) -> int:
-    from .studies import grid, parse_path, parse_show, sweep
+    from hierarchy.studies import grid, parse_path, parse_show, sweep
 
     args.specs = [args.spec]
     spec = _load(args.spec).spec
     parse_path(spec, args.path)
     show = parse_show(args.show)
-    from .plots import check_log_y
+    from hierarchy.report.plots import check_log_y
 
     check_log_y(args.log_y)
     opts, base, plot = _study_setup(args, [spec], "sweep", show, [args.path])
@@ -335,7 +335,7 @@ def cmd_sweep(args) -> int:
 
 
 def cmd_phase(args) -> int:
-    from .studies import grid, parse_path, parse_range, phase_map
+    from hierarchy.studies import grid, parse_path, parse_range, phase_map
 
     args.specs = [args.spec]
     spec = _load(args.spec).spec
@@ -350,7 +350,7 @@ def cmd_phase(args) -> int:
 
 
 def cmd_compare(args) -> int:
-    from .studies import compare, grid, parse_range
+    from hierarchy.studies import compare, grid, parse_range
 
     specs = [_load(path).spec for path in args.specs]
     opts, base, plot = _study_setup(args, specs, "compare")
@@ -364,8 +364,8 @@ def cmd_compare(args) -> int:
 
 
 def cmd_generate(args) -> int:
-    from .generate import write_spec
-    from .spec import load_spec
+    from hierarchy.spec.generate import write_spec
+    from hierarchy.spec import load_spec
 
     write_spec(args.output, areas=args.areas, levels=args.levels, density=args.density, seed=args.seed,
                area_dim=args.area_dim, world_dim=args.world_dim, max_lag=args.max_lag, relays=args.relays,
@@ -377,8 +377,15 @@ def cmd_generate(args) -> int:
 
 
 def cmd_fit_world(args) -> int:
-    from .fitworld import (check_world_output, fit_text, fit_world, load_recording, parse_blocks, parse_zeros,
-                           write_world)
+    from hierarchy.spec.fitworld import (
+        check_world_output,
+        fit_text,
+        fit_world,
+        load_recording,
+        parse_blocks,
+        parse_zeros,
+        write_world,
+    )
 
     check_world_output(args.output, args.force)
     rec = load_recording(args.data)
@@ -394,9 +401,9 @@ def cmd_fit_world(args) -> int:
 
 
 def cmd_import_graph(args) -> int:
-    from .importgraph import read_area_graph, skeleton_yaml, write_skeleton
-    from .io import refuse_existing
-    from .spec import parse_spec
+    from hierarchy.spec.importgraph import read_area_graph, skeleton_yaml, write_skeleton
+    from hierarchy.io import refuse_existing
+    from hierarchy.spec import parse_spec
 
     refuse_existing(args.output, args.force)
     graph = read_area_graph(args.graph, sensors=args.sensors.split(",") if args.sensors else None)
@@ -707,7 +714,7 @@ def _check_options(args) -> None:
     """Every option of ``args`` within its bounds; output paths writable."""
     import math
 
-    from .io import check_output
+    from hierarchy.io import check_output
 
     for name, option in (("spec", "SPEC"), ("gains", "--gains"), ("start", "--start"), ("result", "RESULT"),
                          ("data", "DATA"), ("graph", "FILE"), ("template", "--template")):
@@ -743,7 +750,7 @@ def _check_options(args) -> None:
                 _bad_option(f"--{option}", f"must be a finite number from 0 to {MAX_VALUE:g}; got {value:g}",
                             f"give --{option} a value of 0 or more")
     if args.command == "fit-world":
-        from .fitworld import MAX_LAGS
+        from hierarchy.spec.fitworld import MAX_LAGS
 
         _int_between(args, "lags", "--lags", 1, MAX_LAGS)
         _int_between(args, "whiteness_lags", "--whiteness-lags", 1, 10_000)
@@ -751,7 +758,7 @@ def _check_options(args) -> None:
         _study_value(args.start, "--from")
         _study_value(args.stop, "--to")
     if args.command in ("phase", "compare"):
-        from .studies import parse_range
+        from hierarchy.studies import parse_range
 
         options = ("--x-range", "--y-range") if args.command == "phase" else \
             ("--prices",) if args.prices is not None else ("--budgets",)
@@ -852,7 +859,7 @@ class _TerminalSafe:
         self._keep = keep
 
     def write(self, text):
-        from .errors import terminal_safe
+        from hierarchy.errors import terminal_safe
 
         return self._stream.write(terminal_safe(text, self._keep))
 
@@ -881,10 +888,10 @@ def main(argv=None) -> int:
     import os
     import warnings
 
-    from . import io
-    from .blas import single_thread
+    from hierarchy import io
+    from hierarchy.blas import single_thread
 
-    from .errors import terminal_safe
+    from hierarchy.errors import terminal_safe
 
     args = build_parser().parse_args(argv)
     bookmark = io.mark()

@@ -27,7 +27,7 @@ import re
 import stat
 import tempfile
 
-from .errors import InputError
+from hierarchy.errors import InputError
 
 _WRITTEN: list = []
 

@@ -59,7 +59,7 @@ def design_tables(result) -> DesignTables:
     """
     import pandas as pd
 
-    from .results import result_to_dict
+    from hierarchy.report.results import result_to_dict
 
     d = result_to_dict(result)
     s = result.scores

@@ -19,7 +19,7 @@ from __future__ import annotations
 import os
 from dataclasses import dataclass
 
-from .errors import InputError
+from hierarchy.errors import InputError
 
 __all__ = ["Need", "estimate", "available_memory", "check_memory", "fmt_bytes", "fmt_seconds"]
 

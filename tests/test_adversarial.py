@@ -24,10 +24,10 @@ import pytest
 
 from hierarchy.cli import main
 from hierarchy.errors import HierarchyError
-from hierarchy.gains import load_gains
-from hierarchy.render import read_result
+from hierarchy.loop.gains import load_gains
+from hierarchy.report.drawing import read_result
 from hierarchy.spec import load_spec
-from hierarchy.studies import _load_part
+from hierarchy.studies.runner import _load_part
 
 ROOT = Path(__file__).resolve().parents[1]
 CORPUS = ROOT / "tests" / "adversarial"
@@ -127,10 +127,10 @@ def test_check_and_evaluate_on_every_spec(path):
         spec = load_spec(path)
     except HierarchyError:
         return
-    from hierarchy.gains import Gains, with_pins
+    from hierarchy.loop.gains import Gains, with_pins
 
     try:
-        from hierarchy.gains import check_gains
+        from hierarchy.loop.gains import check_gains
 
         check_gains(spec, with_pins(spec, Gains()))
     except HierarchyError:

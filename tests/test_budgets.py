@@ -217,7 +217,7 @@ def test_the_schema_knows_the_new_budget_keys():
 
 def test_check_and_the_result_tables_show_the_new_budget_terms(tmp_path, capsys):
     from hierarchy.cli import main
-    from hierarchy.results import result_text
+    from hierarchy.report.results import result_text
 
     text = FILTER % ("", "") + """budgets:
   - {name: b, links: all, total: 0.6, costs: {a->s: 2}, caps: {s->a: 0.3}, activity: {a: 0.1}}

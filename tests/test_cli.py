@@ -9,9 +9,9 @@ from pathlib import Path
 import pytest
 
 from hierarchy.cli import main
-from hierarchy.evaluate import evaluate
-from hierarchy.gains import load_gains
-from hierarchy.simulate import simulate
+from hierarchy.loop.evaluate import evaluate
+from hierarchy.loop.gains import load_gains
+from hierarchy.loop.simulate import simulate
 from hierarchy.spec import load_spec
 
 ROOT = Path(__file__).resolve().parents[1]

@@ -8,12 +8,12 @@ import numpy as np
 import pytest
 import scipy.linalg as sla
 
-from hierarchy.closedloop import Layout, assemble
+from hierarchy.loop.closedloop import Layout, assemble
 from hierarchy.errors import SpecError
-from hierarchy.evaluate import cost_and_gradient, evaluate, score
-from hierarchy.gains import Gains, gain_shapes
+from hierarchy.loop.evaluate import cost_and_gradient, evaluate, score
+from hierarchy.loop.gains import Gains, gain_shapes
 from hierarchy.spec import parse_spec, spec_schema
-from hierarchy.simulate import compare, simulate
+from hierarchy.loop.simulate import compare, simulate
 
 AR1 = """
 spec: 1
@@ -237,7 +237,7 @@ def test_monte_carlo_k_step_predictor():
 
 
 def test_sub_circuit_keeps_delays():
-    from hierarchy.design import without_predictions
+    from hierarchy.design.subcircuit import without_predictions
 
     spec = parse_spec(TWO_LEVEL.format(2, 3, 1, 3))
     sub = without_predictions(spec)
@@ -249,9 +249,9 @@ def test_sub_circuit_keeps_delays():
 # --- what users see -----------------------------------------------------------
 
 def test_delay_in_json_text_report_and_drawing():
-    from hierarchy.render import draw_circuit
-    from hierarchy.report import report_html
-    from hierarchy.results import scores_text, scores_to_dict
+    from hierarchy.report.drawing import draw_circuit
+    from hierarchy.report.page import report_html
+    from hierarchy.report.results import scores_text, scores_to_dict
 
     spec = parse_spec(TWO_LEVEL.format(2, 1, 1, 3))
     g = random_gains(spec)
@@ -275,8 +275,8 @@ def test_delay_in_json_text_report_and_drawing():
 
 def test_a_bad_delay_in_a_result_file_is_refused():
     from hierarchy.errors import InputError
-    from hierarchy.render import draw_circuit
-    from hierarchy.results import scores_to_dict
+    from hierarchy.report.drawing import draw_circuit
+    from hierarchy.report.results import scores_to_dict
 
     spec = parse_spec(TWO_LEVEL.format(2, 1, 1, 3))
     data = scores_to_dict(spec, evaluate(spec, random_gains(spec)))

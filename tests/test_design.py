@@ -8,7 +8,7 @@ import scipy.linalg as sla
 from scipy.optimize import brentq, minimize
 
 from hierarchy.design import Options, design, design_budgets, design_prices
-from hierarchy.problem import Problem
+from hierarchy.design.problem import Problem
 from hierarchy.spec import parse_spec
 
 FAST = Options(restarts=3, max_iter=2000)
@@ -334,7 +334,9 @@ def test_screened_wake_up_finds_what_link_by_link_tests_find(monkeypatch):
     # that should wake once its price drops below s2/N (uncoded transmission:
     # P = sqrt(s2 N / price) - N > 0), and must pick the same point as testing
     # every link alone.
-    import hierarchy.design as D
+    import importlib
+
+    D = importlib.import_module("hierarchy.design.silent")
 
     variances, noises = [1.0] * 6, [0.5] * 6
     priced = lambda prices: parse_spec(spec_text(variances, noises, prices))
@@ -351,7 +353,7 @@ def test_screened_wake_up_finds_what_link_by_link_tests_find(monkeypatch):
         seen.append((screened, alone))
         return screened
 
-    monkeypatch.setattr(D, "_wake_silent", both)
+    monkeypatch.setattr(importlib.import_module("hierarchy.design.prices"), "_wake_silent", both)
     cheap = [3.0, 3.0, 3.0, 0.1, 3.0, 3.0]
     res = design_prices(priced(cheap), Options(restarts=1, max_iter=2000, probe_iter=0), start=dear.gains)
     assert seen and seen[0][1] is not None  # the link-by-link test wakes a link...

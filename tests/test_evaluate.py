@@ -6,10 +6,10 @@ import numpy as np
 import pytest
 import scipy.linalg as sla
 
-from hierarchy.closedloop import Layout
+from hierarchy.loop.closedloop import Layout
 from hierarchy.errors import GainsError, UnstableError
-from hierarchy.evaluate import cost_and_gradient, evaluate, score
-from hierarchy.gains import Gains, gain_shapes, load_gains, save_gains
+from hierarchy.loop.evaluate import cost_and_gradient, evaluate, score
+from hierarchy.loop.gains import Gains, gain_shapes, load_gains, save_gains
 from hierarchy.spec import parse_spec
 
 A = np.array([[0.9, 0.2], [0.0, 0.7]])

@@ -14,7 +14,7 @@ import pytest
 import yaml
 
 from hierarchy.cli import main
-from hierarchy.fitworld import Recording, fit_world, load_recording, parse_blocks, world_dict
+from hierarchy.spec.fitworld import Recording, fit_world, load_recording, parse_blocks, world_dict
 from hierarchy.spec import load_spec, parse_spec
 
 ROOT = Path(__file__).resolve().parents[1]
@@ -221,7 +221,7 @@ def test_bad_options_name_the_option(tmp_path, capsys, extra, words):
 def test_examples_in_the_docstrings_run(monkeypatch):
     import doctest
 
-    import hierarchy.fitworld as module
+    import hierarchy.spec.fitworld as module
 
     monkeypatch.chdir(ROOT)  # the examples read specs/ from the repository root
     assert doctest.testmod(module).failed == 0

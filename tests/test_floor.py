@@ -14,11 +14,18 @@ import scipy.linalg as sla
 from scipy.optimize import brentq
 
 from hierarchy.design import Options, design
-from hierarchy.evaluate import evaluate
-from hierarchy.floor import (OPTIMAL, SKIPPED, Floor, information_floor, least_cut_energy,
-                             least_error, link_capacity)
-from hierarchy.gains import Gains, gain_shapes
-from hierarchy.generate import generate_spec_text
+from hierarchy.loop.evaluate import evaluate
+from hierarchy.design.floor import (
+    OPTIMAL,
+    SKIPPED,
+    Floor,
+    information_floor,
+    least_cut_energy,
+    least_error,
+    link_capacity,
+)
+from hierarchy.loop.gains import Gains, gain_shapes
+from hierarchy.spec.generate import generate_spec_text
 from hierarchy.spec import load_spec, parse_spec
 
 SPECS = sorted(Path(__file__).resolve().parent.parent.joinpath("specs").glob("*.yaml"))
@@ -346,7 +353,7 @@ def test_bound_below_the_designed_objective_of_every_example(path):
 
 
 def test_a_bound_above_the_design_is_reported_as_a_contradiction(monkeypatch):
-    import hierarchy.floor as floor_module
+    floor_module = importlib.import_module("hierarchy.design.floor")
 
     spec = load_spec(SPECS[0])
     res = design(spec, Options(restarts=1), floor=False)
@@ -379,9 +386,9 @@ def test_the_design_command_prints_and_writes_the_floor(tmp_path, capsys):
 def random_gains(spec, rng, radius=0.8):
     """Random gains with the areas' block of the closed loop at spectral radius
     about ``radius`` (scaled after drawing)."""
-    from hierarchy.closedloop import Layout, assemble
-    from hierarchy.evaluate import spectral_radius
-    from hierarchy.gains import with_pins
+    from hierarchy.loop.closedloop import Layout, assemble
+    from hierarchy.loop.evaluate import spectral_radius
+    from hierarchy.loop.gains import with_pins
 
     shapes = gain_shapes(spec)
     g = Gains()
@@ -469,7 +476,7 @@ def test_docstring_examples_run(monkeypatch):
     # The Examples sections are doctests; they read specs/ from the repository root.
     import doctest
 
-    import hierarchy.floor as module
+    module = importlib.import_module("hierarchy.design.floor")
 
     monkeypatch.chdir(Path(__file__).resolve().parent.parent)
     result = doctest.testmod(module)

@@ -44,7 +44,7 @@ from hypothesis import strategies as st
 
 from hierarchy.cli import main
 from hierarchy.errors import HierarchyError
-from hierarchy.gains import gain_shapes
+from hierarchy.loop.gains import gain_shapes
 from hierarchy.spec import parse_spec
 
 # ---------------------------------------------------------------------------
@@ -583,9 +583,9 @@ def mutated_texts(draw):
 def random_gains(spec, rng, scale=0.5, radius=0.8) -> dict:
     """Random gains in the file layout, with the area block of the loop at
     spectral radius about ``radius`` (each entry carries one M or K factor)."""
-    from hierarchy.closedloop import Layout, assemble
-    from hierarchy.evaluate import spectral_radius
-    from hierarchy.gains import Gains, with_pins
+    from hierarchy.loop.closedloop import Layout, assemble
+    from hierarchy.loop.evaluate import spectral_radius
+    from hierarchy.loop.gains import Gains, with_pins
 
     shapes = gain_shapes(spec)
     g = Gains()
@@ -772,7 +772,9 @@ def _quick(request):
     """Small designs: few probe iterations and budget rounds (the CLI sets
     only restarts and max-iter); one BLAS thread, since tiny matrices on a
     busy machine are many times slower with several."""
-    import hierarchy.design as design_module
+    import importlib
+
+    design_module = importlib.import_module("hierarchy.design")
 
     original = design_module.Options
 

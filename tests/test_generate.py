@@ -8,7 +8,7 @@ from hierarchy.circuit import Circuit
 from hierarchy.cli import main
 from hierarchy.design import Options, design_budgets, design_prices
 from hierarchy.errors import InputError
-from hierarchy.generate import generate_spec_text
+from hierarchy.spec.generate import generate_spec_text
 from hierarchy.spec import load_spec, parse_spec
 
 QUICK = Options(restarts=2, max_iter=400)

@@ -17,7 +17,7 @@ from hierarchy import studies
 from hierarchy.cli import main
 from hierarchy.design import Options, design
 from hierarchy.errors import InputError
-from hierarchy.model import PREDICTION
+from hierarchy.spec.model import PREDICTION
 from hierarchy.spec import load_spec, parse_spec
 
 ROOT = Path(__file__).resolve().parents[1]
@@ -86,7 +86,7 @@ def _noisier(spec, f):
     """``spec`` with every link's noise times ``f`` (prices as written)."""
     from dataclasses import replace
 
-    from hierarchy.model import frozen_array
+    from hierarchy.spec.model import frozen_array
 
     return replace(spec, links=tuple(replace(l, noise=frozen_array(f * np.asarray(l.noise))) for l in spec.links))
 

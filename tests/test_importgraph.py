@@ -15,7 +15,7 @@ import yaml
 
 from hierarchy.circuit import Circuit
 from hierarchy.cli import main
-from hierarchy.importgraph import import_graph, read_area_graph
+from hierarchy.spec.importgraph import import_graph, read_area_graph
 from hierarchy.spec import load_spec, parse_spec
 
 ROOT = Path(__file__).resolve().parents[1]
@@ -49,7 +49,7 @@ def test_graphml_import_follows_the_stated_rules_and_checks(tmp_path, capsys):
     for a in spec.areas:
         assert a.level == g.nodes[a.name]["level"]
     # and the circuit the tool builds places every node on the graph's level
-    from hierarchy.circuit import levels
+    from hierarchy.graph import levels
 
     assert levels(Circuit(spec).graph) == {n: d["level"] for n, d in g.nodes(data=True)}
 
@@ -139,7 +139,7 @@ def test_an_existing_output_is_kept_without_force(tmp_path, capsys):
 def test_examples_in_the_docstrings_run(monkeypatch):
     import doctest
 
-    import hierarchy.importgraph as module
+    import hierarchy.spec.importgraph as module
 
     monkeypatch.chdir(ROOT)  # the examples read specs/ from the repository root
     assert doctest.testmod(module).failed == 0

@@ -12,11 +12,11 @@ from hypothesis import HealthCheck, given, settings, strategies as st
 
 import importlib
 from hierarchy.design import Options, design
-from hierarchy.gains import Gains, gain_shapes, load_gains
-from hierarchy.generate import generate_spec_text
+from hierarchy.loop.gains import Gains, gain_shapes, load_gains
+from hierarchy.spec.generate import generate_spec_text
 from hierarchy.spec import load_spec, parse_spec
 from hierarchy.studies import compare, set_value
-from hierarchy.subcircuit import contains, embed, without_links, without_predictions
+from hierarchy.design.subcircuit import contains, embed, without_links, without_predictions
 
 from pathlib import Path
 
@@ -75,7 +75,7 @@ def test_a_silent_stream_wakes_only_as_a_whole(hops, monkeypatch):
     woken = design(spec, QUICK, start=start, compare_unpinned=False)
     assert woken.objective < 0.5 * prior
     assert not woken.silent
-    monkeypatch.setattr(importlib.import_module("hierarchy.design"), "_wake_streams", lambda *a: (None, 0))
+    monkeypatch.setattr(importlib.import_module("hierarchy.design.prices"), "_wake_streams", lambda *a: (None, 0))
     alone = design(spec, QUICK, start=start, compare_unpinned=False)
     assert alone.objective == pytest.approx(prior, rel=1e-6)
 
@@ -93,7 +93,7 @@ def test_sub_circuit_invariant_on_generated_circuits(areas, density, seed):
     rs, rb = design(small, QUICK, compare_unpinned=False), design(big, QUICK, compare_unpinned=False)
     assert rb.objective <= rs.objective * (1 + 1e-9)
     # The embedding is exactly the smaller design in the larger circuit.
-    from hierarchy.evaluate import evaluate
+    from hierarchy.loop.evaluate import evaluate
 
     assert evaluate(big, embed(rs.gains, small, big)).objective == pytest.approx(rs.objective, rel=1e-10)
 
@@ -160,9 +160,9 @@ def test_a_narrowed_link_is_a_sub_circuit(path, lid):
     # any design of the narrow circuit (here random stable starts) is a design
     # of the wide one with the same scores, predictions included (the residual
     # that subtracts a narrowed prediction reads it through U').
-    from hierarchy.evaluate import evaluate
-    from hierarchy.problem import Problem
-    from hierarchy.subcircuit import narrowed, widen
+    from hierarchy.loop.evaluate import evaluate
+    from hierarchy.design.problem import Problem
+    from hierarchy.design.subcircuit import narrowed, widen
 
     spec = load_spec(ROOT / "specs" / f"{path}.yaml")
     sub, U = narrowed(spec, lid)

@@ -8,7 +8,9 @@ import numpy as np
 import pytest
 from matplotlib.colors import to_hex
 
-from hierarchy import plots, render, studies
+from hierarchy import studies
+from hierarchy.report import plots
+from hierarchy.report import drawing as render
 from hierarchy.cli import main
 from hierarchy.design import Options
 from hierarchy.errors import InputError

@@ -76,7 +76,7 @@ def nonnormal_pinned_spec(seed: int) -> dict:
 
 
 def test_ill_conditioned_pins_are_refused_not_reported(tmp_path):
-    from hierarchy.evaluate import evaluate
+    from hierarchy.loop.evaluate import evaluate
 
     refused = 0
     for seed in range(12):
@@ -106,9 +106,9 @@ def test_ill_conditioned_pins_exit_nonzero_from_evaluate_and_design(tmp_path):
 def test_check_agrees_with_scipy_lyapunov_on_a_healthy_loop():
     """The check's residual is measured against an independent solve
     (scipy.linalg.solve_discrete_lyapunov, Bartels-Stewart)."""
-    from hierarchy.closedloop import Layout, assemble
-    from hierarchy.evaluate import RESIDUAL_RTOL, _solve
-    from hierarchy.gains import load_gains
+    from hierarchy.loop.closedloop import Layout, assemble
+    from hierarchy.loop.evaluate import RESIDUAL_RTOL, _solve
+    from hierarchy.loop.gains import load_gains
 
     spec = load_spec(SPECS / "two-level.yaml")
     gains = load_gains(SPECS / "two-level.gains.json", spec)
@@ -122,7 +122,7 @@ def test_check_agrees_with_scipy_lyapunov_on_a_healthy_loop():
 
 
 def test_simulation_intervals_hold_no_negative_value():
-    from hierarchy.simulate import _interval
+    from hierarchy.loop.simulate import _interval
 
     # Batch means of a mean square that is nearly always 0 (a link that
     # almost never sends): the symmetric t interval reaches below 0, a value
@@ -146,9 +146,9 @@ def test_simulate_refuses_when_the_exact_values_cannot_be_trusted(tmp_path):
 
 def _readers(tmp_path):
     """Every reader of a user file, as functions of a path."""
-    from hierarchy.gains import load_gains
-    from hierarchy.render import read_result
-    from hierarchy.studies import _load_part
+    from hierarchy.loop.gains import load_gains
+    from hierarchy.report.drawing import read_result
+    from hierarchy.studies.runner import _load_part
 
     spec = load_spec(SINGLE)
 
@@ -304,14 +304,14 @@ def test_a_worker_killed_alone_is_a_message(monkeypatch, tmp_path):
             fut.set_exception(cf.BrokenExecutor("a child process terminated abruptly"))
             return fut
 
-    monkeypatch.setattr(studies, "_Inline", Broken)
+    monkeypatch.setattr(studies.runner, "_Inline", Broken)
     err = one_error(*cli("sweep", SINGLE, "links[thermometer->estimate].price", "--from", "0.1", "--to", "1",
                          "--points", "2", "--workers", "1", "--no-plot", "--out", tmp_path / "s"))
     assert "a worker process ended without finishing its point" in err
 
 
 def test_worker_watchdog_sees_a_zombie_as_dead():
-    from hierarchy.studies import _alive
+    from hierarchy.studies.runner import _alive
 
     child = subprocess.Popen([sys.executable, "-c", "pass"])
     deadline = time.monotonic() + 10
@@ -399,8 +399,8 @@ def test_memory_estimate_is_an_upper_bound_of_a_real_evaluation():
     reports its buffers to it) stays below the estimate."""
     import tracemalloc
 
-    from hierarchy.generate import generate_spec_text
-    from hierarchy.problem import Problem
+    from hierarchy.spec.generate import generate_spec_text
+    from hierarchy.design.problem import Problem
     from hierarchy.resources import BASE_BYTES, estimate
 
     spec = parse_spec(generate_spec_text(areas=6, levels=3, density=0.3, seed=1, area_dim=8))
@@ -505,7 +505,9 @@ def test_bad_option_is_a_usage_message(argv, place):
 def no_computing(monkeypatch):
     """Any design, evaluation or simulation fails the test: the outputs must
     be refused before."""
-    from hierarchy import circuit, evaluate, simulate, studies
+    from hierarchy import circuit, studies
+    from hierarchy.loop import evaluate
+    from hierarchy.loop import simulate
 
     def boom(*args, **kwargs):
         raise AssertionError("computed before the output path was checked")
@@ -513,7 +515,7 @@ def no_computing(monkeypatch):
     monkeypatch.setattr(circuit.Circuit, "design", boom)
     monkeypatch.setattr(evaluate, "evaluate", boom)
     monkeypatch.setattr(simulate, "simulate", boom)
-    monkeypatch.setattr(studies, "_execute", boom)
+    monkeypatch.setattr(studies.walk, "_execute", boom)
 
 
 @pytest.mark.parametrize("argv", [

@@ -9,11 +9,17 @@ from pathlib import Path
 import numpy as np
 import pytest
 
-from hierarchy.circuit import build_graph
+from hierarchy.graph import build_graph
 from hierarchy.cli import main
 from hierarchy.errors import InputError
-from hierarchy.render import (PREDICTION_COLOUR, RESIDUAL_COLOUR, SILENT_COLOUR, draw_circuit, result_graph,
-                              save_circuit)
+from hierarchy.report.drawing import (
+    PREDICTION_COLOUR,
+    RESIDUAL_COLOUR,
+    SILENT_COLOUR,
+    draw_circuit,
+    result_graph,
+    save_circuit,
+)
 from hierarchy.spec import load_spec
 
 ROOT = Path(__file__).resolve().parents[1]
@@ -290,7 +296,7 @@ def overlapping(boxes):
 
 @pytest.fixture(scope="module")
 def big_circuit():
-    from hierarchy.generate import generate_spec_text
+    from hierarchy.spec.generate import generate_spec_text
     from hierarchy.spec import parse_spec
 
     spec = parse_spec(generate_spec_text(areas=32, levels=8, density=0.05, seed=2))
@@ -299,7 +305,7 @@ def big_circuit():
 
 
 def test_32_areas_circuit_view_has_no_text_on_text(big_circuit):
-    from hierarchy.render import MAX_LINK_LABELS
+    from hierarchy.report.drawing import MAX_LINK_LABELS
 
     spec, data = big_circuit
     fig = draw_circuit(data)
@@ -330,7 +336,7 @@ def test_32_areas_circuit_view_has_no_text_on_text(big_circuit):
 
 
 def test_32_areas_matrix_view_has_no_text_on_text(big_circuit):
-    from hierarchy.render import draw_matrix
+    from hierarchy.report.drawing import draw_matrix
 
     spec, data = big_circuit
     fig = draw_matrix(data)
@@ -348,7 +354,7 @@ def test_32_areas_matrix_view_has_no_text_on_text(big_circuit):
 
 
 def test_the_view_is_chosen_by_size(big_circuit, tmp_path):
-    from hierarchy.render import MAX_DRAWN_AREAS, draw
+    from hierarchy.report.drawing import MAX_DRAWN_AREAS, draw
 
     _, data = big_circuit
     assert len(data["areas"]) > MAX_DRAWN_AREAS
@@ -360,7 +366,7 @@ def test_the_view_is_chosen_by_size(big_circuit, tmp_path):
 
 @pytest.mark.parametrize("name", EXAMPLES)
 def test_example_drawings_have_no_text_on_text(name):
-    from hierarchy.render import draw_matrix
+    from hierarchy.report.drawing import draw_matrix
 
     for fig in (draw_circuit(fake_result(name)), draw_matrix(fake_result(name))):
         boxes = text_boxes(fig)
@@ -384,7 +390,7 @@ def test_the_legend_claims_only_what_was_checked():
 def test_the_drawing_goes_onto_a_given_axes(view):
     from matplotlib.figure import Figure
 
-    from hierarchy.render import draw
+    from hierarchy.report.drawing import draw
 
     from matplotlib.backends.backend_agg import FigureCanvasAgg
 

@@ -10,9 +10,10 @@ from pathlib import Path
 import numpy as np
 import pytest
 
-from hierarchy import rules, studies
+from hierarchy import studies
+from hierarchy.spec import rules
 from hierarchy.errors import InputError, SpecError
-from hierarchy.model import frozen_array
+from hierarchy.spec.model import frozen_array
 from hierarchy.spec import load_spec, parse_spec
 
 ROOT = Path(__file__).resolve().parents[1]
@@ -149,10 +150,8 @@ def test_check_spec_accepts_every_example_spec():
 
 
 def test_one_stability_margin():
-    spec_module = importlib.import_module("hierarchy.spec")
-    evaluate = importlib.import_module("hierarchy.evaluate")
-    fitworld = importlib.import_module("hierarchy.fitworld")
-    assert spec_module.STABLE_RADIUS is rules.STABLE_RADIUS
+    evaluate = importlib.import_module("hierarchy.loop.evaluate")
+    fitworld = importlib.import_module("hierarchy.spec.fitworld")
     assert evaluate.STABLE_RADIUS is rules.STABLE_RADIUS
     assert fitworld.STABLE_RADIUS is rules.STABLE_RADIUS
     assert not hasattr(studies, "STABLE_RADIUS")  # studies go through rules.check_spec

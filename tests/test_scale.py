@@ -13,11 +13,11 @@ import numpy as np
 import pytest
 import scipy.linalg as sla
 
-from hierarchy.closedloop import Layout, assemble
-from hierarchy.evaluate import cost_and_gradient, score, spectral_radius
-from hierarchy.gains import Gains, gain_shapes
-from hierarchy.generate import generate_spec_text
-from hierarchy.model import PREDICTION
+from hierarchy.loop.closedloop import Layout, assemble
+from hierarchy.loop.evaluate import cost_and_gradient, score, spectral_radius
+from hierarchy.loop.gains import Gains, gain_shapes
+from hierarchy.spec.generate import generate_spec_text
+from hierarchy.spec.model import PREDICTION
 from hierarchy.spec import parse_spec
 
 RTOL = 1e-9

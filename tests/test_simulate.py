@@ -6,14 +6,23 @@ import math
 import numpy as np
 import pytest
 
-from hierarchy.closedloop import Layout, assemble
+from hierarchy.loop.closedloop import Layout, assemble
 from hierarchy.errors import InputError, UnstableError
-from hierarchy.evaluate import evaluate, loop_radius, spectral_radius
-from hierarchy.gains import Gains, gain_shapes
-from hierarchy.model import (
-    PREDICTION, RESIDUAL, Area, Link, Sensor, Spec, StateBlock, World, frozen_array, frozen_map,
+from hierarchy.loop.evaluate import evaluate, loop_radius, spectral_radius
+from hierarchy.loop.gains import Gains, gain_shapes
+from hierarchy.spec.model import (
+    PREDICTION,
+    RESIDUAL,
+    Area,
+    Link,
+    Sensor,
+    Spec,
+    StateBlock,
+    World,
+    frozen_array,
+    frozen_map,
 )
-from hierarchy.simulate import Estimate, compare, noise_factor, simulate
+from hierarchy.loop.simulate import Estimate, compare, noise_factor, simulate
 
 fa = frozen_array
 

@@ -9,7 +9,7 @@ decrement of a quadratic 0.5 x'Ax - b'x at x is 0.5 g'A^-1 g exactly.
 import numpy as np
 import pytest
 
-from hierarchy.solver import CONVERGED, _Dense, _Limited, minimise, newton_gain
+from hierarchy.design.quasinewton import CONVERGED, _Dense, _Limited, minimise, newton_gain
 
 
 def rosenbrock(x):

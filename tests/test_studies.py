@@ -13,6 +13,8 @@ from pathlib import Path
 import numpy as np
 import pytest
 
+import importlib
+
 from hierarchy import studies
 from hierarchy.cli import main
 from hierarchy.design import Options
@@ -209,7 +211,7 @@ def test_example_pairs_are_valid_and_comparable(rich, poor):
         assert (ROOT / "specs" / f"{Path(spec.path).name}").read_text().startswith("# Compare pair")
     assert studies.spec_digest(studies.set_value(a, "budgets[total].total", 3.7)) != studies.spec_digest(a)
     assert studies.spec_digest(a.world) == studies.spec_digest(b.world)
-    assert studies._targets(a) == studies._targets(b)
+    assert importlib.import_module("hierarchy.studies.compare")._targets(a) == importlib.import_module("hierarchy.studies.compare")._targets(b)
     if rich == "compare-predictive":  # the same circuit plus top-down predictions
         assert {l.id for l in b.links} < {l.id for l in a.links}
         assert all(l.kind == "prediction" for l in a.links if l.id not in {m.id for m in b.links})
@@ -227,7 +229,7 @@ def test_compare_needs_one_budget_to_vary():
 def test_resume_after_a_failure_midway_recomputes_nothing(tmp_path, monkeypatch):
     spec = load_spec(ROOT / "specs" / "single-loop.yaml")
     values = studies.grid(1e-3, 0.1, 6, log=True)
-    real = studies._design_point
+    real = studies.runner._design_point
     calls = []
 
     def failing(*args):
@@ -236,16 +238,16 @@ def test_resume_after_a_failure_midway_recomputes_nothing(tmp_path, monkeypatch)
         calls.append(1)
         return real(*args)
 
-    monkeypatch.setattr(studies, "_design_point", failing)
+    monkeypatch.setattr(studies.runner, "_design_point", failing)
     with pytest.raises(RuntimeError, match="injected"):
         studies.sweep(spec, PRICE, values, FAST, output=tmp_path / "run", workers=1)
     assert len(list((tmp_path / "run.parts").glob("*.json"))) == 3
     assert not (tmp_path / "run.csv").exists()
 
     calls.clear()
-    monkeypatch.setattr(studies, "_design_point", lambda *a: (calls.append(1), real(*a))[1])
+    monkeypatch.setattr(studies.runner, "_design_point", lambda *a: (calls.append(1), real(*a))[1])
     again = studies.sweep(spec, PRICE, values, FAST, output=tmp_path / "run", workers=1)
-    monkeypatch.setattr(studies, "_design_point", real)
+    monkeypatch.setattr(studies.runner, "_design_point", real)
     whole = studies.sweep(spec, PRICE, values, FAST, output=tmp_path / "whole", workers=1)
     # The three finished points are reused; everything else (the rest of the
     # forward walk, the backward walk, cold designs where the walks disagree)
@@ -324,7 +326,7 @@ def test_phase_map_finds_the_scale_law_boundary(tmp_path):
         for (x2, y2), s2 in silent.items():
             if abs(np.log(x1 * y1) - np.log(x2 * y2)) < 1e-9:
                 assert s1 == s2
-    from hierarchy import plots
+    from hierarchy.report import plots
 
     fig = plots.phase_figure(study, f"links[{PRED}].power")
     gids = {a.get_gid() for ax in fig.axes for a in ax.get_children()}
@@ -334,7 +336,7 @@ def test_phase_map_finds_the_scale_law_boundary(tmp_path):
 
 
 def test_sweep_plot_shades_the_silent_range(price_sweep, tmp_path):
-    from hierarchy import plots
+    from hierarchy.report import plots
 
     study, _ = price_sweep
     fig = plots.sweep_figure(study, [f"links[{PRED}].power", "areas[estimate].error"])
@@ -354,7 +356,7 @@ def test_sweep_plot_shades_the_silent_range(price_sweep, tmp_path):
 
 
 def test_unconverged_points_are_marked_and_drawn_hollow(tmp_path):
-    from hierarchy import plots
+    from hierarchy.report import plots
 
     spec = load_spec(ROOT / "specs" / "two-level.yaml")
     study = studies.sweep(spec, "links[upstream-view->station-view].price", [0.01, 0.02],

@@ -7,11 +7,11 @@ import math
 import numpy as np
 import pytest
 
-from hierarchy import units as U
+from hierarchy.spec import units as U
 from hierarchy.errors import SpecError
-from hierarchy.evaluate import evaluate
-from hierarchy.gains import Gains
-from hierarchy.results import scores_text, scores_to_dict, write_json
+from hierarchy.loop.evaluate import evaluate
+from hierarchy.loop.gains import Gains
+from hierarchy.report.results import scores_text, scores_to_dict, write_json
 from hierarchy.spec import parse_spec, spec_schema
 
 SPEC = """
@@ -122,8 +122,8 @@ def test_units_change_no_computed_number():
 
 
 def test_units_in_json_text_report_and_drawing(tmp_path):
-    from hierarchy.render import draw_circuit
-    from hierarchy.report import report_html
+    from hierarchy.report.drawing import draw_circuit
+    from hierarchy.report.page import report_html
 
     spec = spec_with("{step: 0.01, preset: neural}")
     scores = evaluate(spec, gains())

@@ -8,10 +8,10 @@ from pathlib import Path
 
 import pytest
 
-from hierarchy.circuit import build_graph
+from hierarchy.graph import build_graph
 from hierarchy.cli import main
 from hierarchy.errors import InputError, SpecError
-from hierarchy.results import EXPLANATIONS, explain_text, scores_text
+from hierarchy.report.results import EXPLANATIONS, explain_text, scores_text
 from hierarchy.spec import parse_spec
 
 ROOT = Path(__file__).resolve().parents[1]
@@ -48,7 +48,7 @@ def test_a_bad_level_is_refused_at_its_place(value, words):
 
 
 def test_generated_specs_are_drawn_on_their_generated_levels():
-    from hierarchy.generate import generate_spec_text
+    from hierarchy.spec.generate import generate_spec_text
 
     # Level-skipping residuals from the probes would put upper areas on level 1 by the default rule.
     spec = parse_spec(generate_spec_text(areas=6, levels=3, density=1.0, seed=0))
@@ -90,8 +90,8 @@ links: [{{from: eye, to: v1, kind: residual}}]
 
 
 def test_budgeted_links_name_their_budget_instead_of_price_0():
-    from hierarchy.evaluate import evaluate
-    from hierarchy.gains import load_gains
+    from hierarchy.loop.evaluate import evaluate
+    from hierarchy.loop.gains import load_gains
     from hierarchy.spec import load_spec
 
     spec = load_spec(ROOT / "specs/two-senses.yaml")
@@ -118,8 +118,8 @@ def test_solver_counts_say_they_are_totals(capsys):
 
 
 def test_explain_covers_every_printed_column(capsys):
-    from hierarchy.evaluate import evaluate
-    from hierarchy.gains import load_gains
+    from hierarchy.loop.evaluate import evaluate
+    from hierarchy.loop.gains import load_gains
     from hierarchy.spec import load_spec
 
     spec = load_spec(ROOT / "specs/two-level.yaml")

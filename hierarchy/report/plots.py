@@ -30,9 +30,9 @@ import os
 
 import numpy as np
 
-from .errors import InputError
+from hierarchy.errors import InputError
 
-from .render import PREDICTION_COLOUR, RESIDUAL_COLOUR, SILENT_COLOUR
+from hierarchy.report.drawing import PREDICTION_COLOUR, RESIDUAL_COLOUR, SILENT_COLOUR
 
 #: Link kinds keep the colours of the circuit drawings in every figure.
 KIND_COLOURS = {"residual": RESIDUAL_COLOUR, "prediction": PREDICTION_COLOUR}
@@ -118,7 +118,7 @@ def figure_bytes(fig, fmt="png", dpi=150) -> bytes:
 
 def save_figure(fig, path, dpi=150) -> None:
     """Write a figure atomically; the format follows the extension."""
-    from .io import atomic_write_bytes
+    from hierarchy.io import atomic_write_bytes
 
     atomic_write_bytes(path, figure_bytes(fig, check_plot_path(path), dpi))
 

@@ -21,9 +21,9 @@ from dataclasses import dataclass, field
 
 import numpy as np
 
-from .errors import GainsError
-from .io import atomic_write_text
-from .model import PREDICTION, RESIDUAL, Spec
+from hierarchy.errors import GainsError
+from hierarchy.io import atomic_write_text
+from hierarchy.spec.model import PREDICTION, RESIDUAL, Spec
 
 GAINS_FORMAT = "hierarchy-gains"
 GAINS_VERSION = 1
@@ -278,7 +278,7 @@ def load_gains(path, spec: Spec | None = None) -> Gains:
     --------
     >>> g = load_gains("specs/single-loop.gains.json", spec)   # doctest: +SKIP
     """
-    from .io import ReadRefused, read_text
+    from hierarchy.io import ReadRefused, read_text
 
     try:
         data = json.loads(read_text(path, MAX_GAINS_FILE))

@@ -20,8 +20,8 @@ import math
 
 import numpy as np
 
-from .errors import InputError, SpecError
-from .model import LINK_KINDS, PREDICTION, RESIDUAL, Link, Spec, World
+from hierarchy.errors import InputError, SpecError
+from hierarchy.spec.model import LINK_KINDS, PREDICTION, RESIDUAL, Link, Spec, World
 
 __all__ = [
     "STABLE_RADIUS",

@@ -27,9 +27,9 @@ from __future__ import annotations
 
 import numpy as np
 
-from .errors import InputError
-from .io import atomic_write_text
-from .rules import MAX_LAG, MAX_TOTAL_DIM
+from hierarchy.errors import InputError
+from hierarchy.io import atomic_write_text
+from hierarchy.spec.rules import MAX_LAG, MAX_TOTAL_DIM
 
 #: Largest circuit the generator writes (the spec reader's own size limits
 #: would refuse much larger ones anyway).
@@ -232,8 +232,8 @@ def write_spec(path, **kwargs) -> None:
     --------
     >>> write_spec("big.yaml", areas=32, levels=16, density=0.175, seed=0)   # doctest: +SKIP
     """
-    from .errors import SpecError
-    from .spec import parse_spec
+    from hierarchy.errors import SpecError
+    from hierarchy.spec import parse_spec
 
     text = generate_spec_text(**kwargs)
     try:  # some limits (the links' total size) depend on the random draw

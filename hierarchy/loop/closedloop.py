@@ -46,8 +46,8 @@ from functools import cached_property
 
 import numpy as np
 
-from .gains import Gains, gain_shapes, paired_prediction
-from .model import PREDICTION, Spec
+from hierarchy.loop.gains import Gains, gain_shapes, paired_prediction
+from hierarchy.spec.model import PREDICTION, Spec
 
 
 @dataclass(frozen=True)

@@ -9,7 +9,7 @@ import math
 
 import numpy as np
 
-from .io import atomic_write_text
+from hierarchy.io import atomic_write_text
 
 RESULT_FORMAT = "hierarchy-result"
 RESULT_VERSION = 1
@@ -66,8 +66,8 @@ def _source(spec) -> dict | None:
 
 def scores_to_dict(spec, scores, gains=None) -> dict:
     """JSON-ready dict of exact :class:`~hierarchy.evaluate.Scores`."""
-    from . import __version__
-    from .circuit import build_graph
+    from hierarchy import __version__
+    from hierarchy.graph import build_graph
 
     budgeted = {lid for b in spec.budgets for lid in b.links}
     d = scores.to_dict()
@@ -96,7 +96,7 @@ def scores_to_dict(spec, scores, gains=None) -> dict:
 def _add_physical(d: dict, units) -> None:
     """Physical rates beside the model's numbers: per link under
     ``physical`` and their sums under ``physical_total`` (docs/spec.md, units)."""
-    from .units import describe, physical
+    from hierarchy.spec.units import describe, physical
 
     d["units"] = {**units.to_dict(), "assumes": describe(units)}
     total = {"bits_per_second": 0.0, "events_per_second": 0.0, "watts": 0.0}
@@ -109,7 +109,7 @@ def _add_physical(d: dict, units) -> None:
 
 def physical_text(spec, scores) -> str:
     """The physical-units table of a spec with a ``units:`` section."""
-    from .units import describe, physical
+    from hierarchy.spec.units import describe, physical
 
     u = spec.units
     rows = []
@@ -247,7 +247,7 @@ def scores_text(spec, scores, gains=None, result=None) -> str:
     if spec.units is not None:
         out.append(physical_text(spec, scores))
     if spec.budgets and result is None:
-        from .allocation import constraints
+        from hierarchy.design.allocation import constraints
 
         rows = []
         cons = constraints(spec)
@@ -412,7 +412,7 @@ def explain_text(word=None) -> str:
     >>> print(explain_text("snr"))
     links table, SNR: power divided by the channel's noise power: how loud the link is above its noise
     """
-    from .errors import InputError
+    from hierarchy.errors import InputError
 
     if word is None:
         out, table_name = [], None

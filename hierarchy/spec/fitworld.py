@@ -53,8 +53,8 @@ from dataclasses import dataclass, field
 
 import numpy as np
 
-from .errors import InputError
-from .rules import MAX_NUMBER, STABLE_RADIUS  # the spec's limits: a fitted world must be one a spec holds
+from hierarchy.errors import InputError
+from hierarchy.spec.rules import MAX_NUMBER, STABLE_RADIUS  # the spec's limits: a fitted world must be one a spec holds
 
 __all__ = ["Recording", "WorldFit", "load_recording", "parse_blocks", "parse_zeros", "fit_world",
            "world_dict", "world_yaml", "into_template", "check_world_output", "write_world", "ljung_box", "portmanteau", "fit_text"]
@@ -102,7 +102,7 @@ def load_recording(path) -> Recording:
     >>> rec.channels                                              # doctest: +SKIP
     ('flow', 'level_a', 'level_b')
     """
-    from .io import ReadRefused, read_bytes
+    from hierarchy.io import ReadRefused, read_bytes
 
     path = os.fspath(path)
     try:
@@ -594,8 +594,8 @@ def into_template(fit: WorldFit, template) -> str:
 
     import yaml
 
-    from .errors import SpecError
-    from .spec import load_spec, parse_spec
+    from hierarchy.errors import SpecError
+    from hierarchy.spec import load_spec, parse_spec
 
     load_spec(template)  # a broken template is reported as itself, not as the output
     with open(template, encoding="utf-8") as fh:
@@ -620,7 +620,7 @@ def into_template(fit: WorldFit, template) -> str:
 
 def check_world_output(path, force=False) -> None:
     """Refuse, before any work, an existing ``path`` unless ``force``."""
-    from .io import refuse_existing
+    from hierarchy.io import refuse_existing
 
     refuse_existing(path, force)
 
@@ -635,7 +635,7 @@ def write_world(fit: WorldFit, path, force=False, template=None) -> None:
     InputError
         If ``path`` exists and ``force`` is false.
     """
-    from .io import atomic_write_text
+    from hierarchy.io import atomic_write_text
 
     check_world_output(path, force)
     text = world_yaml(fit) if template is None else into_template(fit, template)
@@ -644,7 +644,7 @@ def write_world(fit: WorldFit, path, force=False, template=None) -> None:
 
 def fit_text(fit: WorldFit) -> str:
     """A plain-text report of the fit for the terminal."""
-    from .results import fmt, table
+    from hierarchy.report.results import fmt, table
 
     lines = [f"fitted VAR({fit.lags}) on {fit.samples} samples of {len(fit.channels)} channel(s) in "
              f"{len(fit.blocks)} block(s)" + (f"; not used: {', '.join(fit.ignored)}" if fit.ignored else "")]

@@ -52,7 +52,7 @@ from dataclasses import dataclass
 
 import numpy as np
 
-from .errors import InputError
+from hierarchy.errors import InputError
 
 __all__ = ["AreaGraph", "read_area_graph", "skeleton", "skeleton_yaml", "import_graph", "write_skeleton",
            "FEEDFORWARD", "FEEDBACK", "LATERAL"]
@@ -93,7 +93,7 @@ class AreaGraph:
 def _read(path: str):
     import networkx as nx
 
-    from .io import ReadRefused, read_bytes
+    from hierarchy.io import ReadRefused, read_bytes
 
     try:
         raw = read_bytes(path, MAX_FILE)
@@ -386,7 +386,7 @@ def import_graph(path, *, sensors=None, **kw) -> str:
 
 def write_skeleton(text: str, path, force=False) -> None:
     """Write ``text`` to ``path`` atomically; an existing file only with ``force``."""
-    from .io import atomic_write_text, refuse_existing
+    from hierarchy.io import atomic_write_text, refuse_existing
 
     refuse_existing(path, force)
     atomic_write_text(os.fspath(path), text)

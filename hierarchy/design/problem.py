@@ -14,10 +14,10 @@ from __future__ import annotations
 import numpy as np
 import scipy.linalg as sla
 
-from .closedloop import Layout
-from .evaluate import area_radius, flat_cost_and_gradient
-from .gains import Gains, gain_shapes, pinned_gains
-from .model import PREDICTION, Spec
+from hierarchy.loop.closedloop import Layout
+from hierarchy.loop.evaluate import area_radius, flat_cost_and_gradient
+from hierarchy.loop.gains import Gains, gain_shapes, pinned_gains
+from hierarchy.spec.model import PREDICTION, Spec
 
 #: Evaluations made by every :class:`Problem` of this process, for progress
 #: reports from another thread (see ``hierarchy.cli``); only ever increased.

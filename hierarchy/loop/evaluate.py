@@ -13,11 +13,11 @@ from dataclasses import dataclass, field
 import numpy as np
 import scipy.linalg as sla
 
-from .closedloop import ClosedLoop, Layout
-from .errors import UnstableError
-from .gains import Gains, check_gains, with_pins
-from .model import Spec
-from .rules import STABLE_RADIUS  # a closed loop is stable below it: the world's margin too
+from hierarchy.loop.closedloop import ClosedLoop, Layout
+from hierarchy.errors import UnstableError
+from hierarchy.loop.gains import Gains, check_gains, with_pins
+from hierarchy.spec.model import Spec
+from hierarchy.spec.rules import STABLE_RADIUS  # a closed loop is stable below it: the world's margin too
 
 #: Final scores are refused when the Lyapunov residual
 #: ``||Sigma - Phi Sigma Phi' - Gamma Omega Gamma'||_F`` exceeds this times
@@ -443,7 +443,7 @@ def check_scores(layout: Layout, gains: Gains, Sigma: np.ndarray, scores: Scores
     UnstableError
         Naming the check that failed, when the numbers cannot be trusted.
     """
-    from .closedloop import assemble
+    from hierarchy.loop.closedloop import assemble
 
     loop = assemble(layout, gains)
     Omega = layout.Omega

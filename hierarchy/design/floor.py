@@ -24,7 +24,7 @@ from dataclasses import dataclass, field
 
 import numpy as np
 
-from .model import RESIDUAL, Spec
+from hierarchy.spec.model import RESIDUAL, Spec
 
 __all__ = ["Floor", "information_floor", "least_cut_energy", "least_error", "link_capacity",
            "OPTIMAL", "SKIPPED"]
@@ -621,7 +621,7 @@ def _describe(kind, cut: _Cut, src) -> str:
 
 def _check_amount(value, place):
     """A limit given from Python must be a finite number >= 0."""
-    from .errors import InputError
+    from hierarchy.errors import InputError
 
     ok = isinstance(value, (int, float, np.floating, np.integer)) and not isinstance(value, bool)
     if not ok or not math.isfinite(value) or value < 0:
@@ -699,7 +699,7 @@ def least_cut_energy(spec: Spec, errors: dict, max_dim: int | None = None) -> Fl
     >>> least_cut_energy(spec, {"estimate": 0.01}).status
     'infeasible'
     """
-    from .errors import InputError
+    from hierarchy.errors import InputError
 
     for name, limit in errors.items():
         if not any(a.name == name and a.has_target for a in spec.areas):

@@ -23,8 +23,8 @@ import base64
 import html
 import os
 
-from .errors import InputError
-from .model import PREDICTION
+from hierarchy.errors import InputError
+from hierarchy.spec.model import PREDICTION
 
 __all__ = ["report_html", "save_report", "check_report_path"]
 
@@ -66,7 +66,7 @@ def _e(x) -> str:
 
 
 def _num(x, digits=4) -> str:
-    from .results import fmt
+    from hierarchy.report.results import fmt
 
     return fmt(x, digits)
 
@@ -81,7 +81,7 @@ def _table(header, rows, classes=None) -> str:
 
 
 def _legend(table_name, columns) -> str:
-    from .results import EXPLANATIONS
+    from hierarchy.report.results import EXPLANATIONS
 
     words = {(t, c): m for t, c, m in EXPLANATIONS}
     items = [f"<dt>{_e(c)}</dt><dd>{_e(words[(table_name, c)])}</dd>" for c in columns
@@ -118,8 +118,8 @@ def _physical(data) -> str:
 
 
 def _picture(data, spec) -> str:
-    from .plots import figure_bytes
-    from .render import draw
+    from hierarchy.report.plots import figure_bytes
+    from hierarchy.report.drawing import draw
 
     png = figure_bytes(draw(data, spec=spec), "png", dpi=110)
     return ('<img alt="drawing of the designed circuit" src="data:image/png;base64,'
@@ -161,8 +161,8 @@ def report_html(data, spec=None) -> str:
     str
         A complete HTML document with no outside references.
     """
-    from . import __version__
-    from .render import _as_dict
+    from hierarchy import __version__
+    from hierarchy.report.drawing import _as_dict
 
     data, spec = _as_dict(data, spec)
     name = data.get("spec") or "circuit"
@@ -213,7 +213,7 @@ def report_html(data, spec=None) -> str:
                  + _legend("links", link_cols))
     parts.append(_physical(data))
     if budgets:
-        from .results import budget_terms
+        from hierarchy.report.results import budget_terms
 
         cols = ["budget", "total", "used", "use", "shadow price", "met", "terms"]
         rows = [[b, _num(r.get("total")), _num(r.get("used")),
@@ -262,7 +262,7 @@ def save_report(data, path, spec=None) -> None:
     --------
     >>> save_report(read_result("design.json"), "report.html")   # doctest: +SKIP
     """
-    from .io import atomic_write_text
+    from hierarchy.io import atomic_write_text
 
     check_report_path(path)
     atomic_write_text(path, report_html(data, spec))

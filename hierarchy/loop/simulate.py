@@ -23,11 +23,11 @@ from typing import NamedTuple
 import numpy as np
 import scipy.stats
 
-from .closedloop import Layout, assemble
-from .errors import InputError, UnstableError
-from .evaluate import Scores, check_stable
-from .gains import Gains, check_gains, with_pins
-from .model import Spec
+from hierarchy.loop.closedloop import Layout, assemble
+from hierarchy.errors import InputError, UnstableError
+from hierarchy.loop.evaluate import Scores, check_stable
+from hierarchy.loop.gains import Gains, check_gains, with_pins
+from hierarchy.spec.model import Spec
 
 #: Steps drawn per block: noises for a whole block are drawn at once and all
 #: outputs of a block are computed with a few matrix products.

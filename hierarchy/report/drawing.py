@@ -56,8 +56,8 @@ import json
 import math
 import os
 
-from .errors import InputError
-from .model import PREDICTION, RESIDUAL
+from hierarchy.errors import InputError
+from hierarchy.spec.model import PREDICTION, RESIDUAL
 
 #: Output formats by file extension.
 FORMATS = {".png": "png", ".svg": "svg", ".pdf": "pdf"}
@@ -113,7 +113,7 @@ def read_result(path) -> dict:
     >>> sorted(data["links"])                # doctest: +SKIP
     ['probe->station-view', ...]
     """
-    from .io import ReadRefused, read_text
+    from hierarchy.io import ReadRefused, read_text
 
     path = os.fspath(path)
     try:
@@ -228,7 +228,7 @@ def result_graph(data: dict, spec=None):
     """
     import networkx as nx
 
-    from .circuit import build_graph, levels
+    from hierarchy.graph import build_graph, levels
 
     if spec is not None:
         g = build_graph(spec)
@@ -1035,6 +1035,6 @@ def save_circuit(result, path, spec=None, width_by="power", dpi=150, view="auto"
     # Fixed metadata keep the files the same from run to run.
     metadata = {"png": {"Software": None}, "svg": {"Date": None}, "pdf": {"CreationDate": None}}[fmt]
     fig.savefig(buf, format=fmt, dpi=dpi, metadata=metadata)
-    from .io import atomic_write_bytes
+    from hierarchy.io import atomic_write_bytes
 
     atomic_write_bytes(path, buf.getvalue())

@@ -16,8 +16,8 @@ from dataclasses import fields, is_dataclass, replace
 
 import numpy as np
 
-from .gains import Gains, gain_shapes
-from .model import PREDICTION, Spec
+from hierarchy.loop.gains import Gains, gain_shapes
+from hierarchy.spec.model import PREDICTION, Spec
 
 __all__ = ["without_links", "without_predictions", "embed", "contains", "narrowed", "widen"]
 
