@@ -1,7 +1,7 @@
 """Budget form: block coordinate descent with a CVXPY allocation, against
 today's augmented Lagrangian and against the price form.
 
-Circuits come from ``hierarchy.generate`` (``A`` areas on ``A / 2``
+Circuits come from ``hierarchy.spec.generate`` (``A`` areas on ``A / 2``
 levels, area dimension 2, density 0.175, seed 0, the links sent by areas
 unpriced). Each gets two budget sets built from the generator's per-level
 budgets (total ``T``, their sum):

@@ -1,7 +1,7 @@
 """What do conduction delays cost the exact evaluation?
 
 For generated circuits of 4 and 16 areas this times, in this process,
-``hierarchy.evaluate.flat_cost_and_gradient`` (value and exact gradient):
+``hierarchy.loop.evaluate.flat_cost_and_gradient`` (value and exact gradient):
 
 * on the circuit as generated (every link takes one step): the baseline;
 * with every prediction delayed by 3 steps (2 copies of each prediction's

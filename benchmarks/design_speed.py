@@ -5,7 +5,7 @@ For specs/two-level.yaml and benchmarks/six-area.yaml this times
 * ours: ``hierarchy.design.design_prices(spec, Options())`` (stability-keeping
   BFGS with exact adjoint gradients, several starts, silent-link handling);
 * naive: ``scipy.optimize.minimize(method="L-BFGS-B")`` over all free gains
-  flattened (``hierarchy.problem.Problem``), value only (``1e6`` where the
+  flattened (``hierarchy.design.problem.Problem``), value only (``1e6`` where the
   loop is unstable), finite-difference gradients, from the same first start
   ``prob.pack(prob.informed_start())``, default options except
   ``maxiter=15000`` and ``maxfun=10**6``.

@@ -5,9 +5,9 @@ circuit in Python, draws random stable gains, and times
 
 * the floor: one ``scipy.linalg.solve_discrete_lyapunov`` of the same size on
   a random stable matrix;
-* ``hierarchy.evaluate.score`` (assembly, stability check, Lyapunov solve and
+* ``hierarchy.loop.evaluate.score`` (assembly, stability check, Lyapunov solve and
   every score);
-* ``hierarchy.evaluate.cost_and_gradient`` (value and exact adjoint gradient).
+* ``hierarchy.loop.evaluate.cost_and_gradient`` (value and exact adjoint gradient).
 
 Every time is the median of repeated runs in this process (time.perf_counter).
 The goal of the issue is ``score`` within 3x of the floor at size 128.

@@ -1,11 +1,11 @@
 """The information floor beside the designs: bound, gap and time.
 
 For every example spec in ``specs/`` it designs the circuit (default
-options), computes the information floor (``hierarchy.floor``) and prints
+options), computes the information floor (``hierarchy.design.floor``) and prints
 the design's objective, the bound, the relative gap and both wall times,
 with the floor's time as a ratio of the design's (the baseline, measured in
 the same process). Then it times the floor alone on generated layered
-circuits (``hierarchy.generate``: ``areas`` areas on ``areas / 2`` levels,
+circuits (``hierarchy.spec.generate``: ``areas`` areas on ``areas / 2`` levels,
 world dimension ``areas``, density 0.175, seed 0, the circuits of
 ``benchmarks/scale.py``), with one design of the 8-area circuit as the
 baseline.

@@ -1,6 +1,6 @@
 """Scale: the exact evaluation and the designer on synthetic layered circuits.
 
-Circuits come from ``hierarchy.generate`` (``areas`` areas on ``areas / 2``
+Circuits come from ``hierarchy.spec.generate`` (``areas`` areas on ``areas / 2``
 levels, area dimension 2, world dimension ``areas``, density 0.175, seed 0:
 302 links at 32 areas). Every measurement runs in a fresh child process, so
 that its peak memory (``ru_maxrss``) is its own and its BLAS thread setting
@@ -198,7 +198,7 @@ def main(argv=None) -> int:
     print(f"  measuring children (--threads {args.threads}): " + "; ".join(first["blas"]))
     print(f"  python {platform.python_version()}, numpy {np.__version__}, scipy {scipy.__version__}; "
           f"load average at start {os.getloadavg()[0]:.1f}")
-    print(f"  circuits: hierarchy.generate, areas A on A/2 levels, area dim 2, world dim A, "
+    print(f"  circuits: hierarchy.spec.generate, areas A on A/2 levels, area dim 2, world dim A, "
           f"density {DENSITY}, seed {SEED}; each run in a fresh process")
     print()
 

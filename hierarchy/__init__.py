@@ -36,7 +36,7 @@ def load(path) -> Circuit:
 
 
 def evaluate(spec, gains=None):
-    """Exact stationary scores (see :func:`hierarchy.evaluate.evaluate`)."""
+    """Exact stationary scores (see :func:`hierarchy.loop.evaluate.evaluate`)."""
     from hierarchy.loop.evaluate import evaluate as _evaluate
 
     return _evaluate(spec, gains)

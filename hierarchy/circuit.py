@@ -37,13 +37,13 @@ class Circuit:
         return list(self.spec.warnings) + reach_warnings(self.graph)
 
     def evaluate(self, gains=None):
-        """Exact scores for ``gains`` (see :func:`hierarchy.evaluate.evaluate`)."""
+        """Exact scores for ``gains`` (see :func:`hierarchy.loop.evaluate.evaluate`)."""
         from hierarchy.loop.evaluate import evaluate
 
         return evaluate(self.spec, gains)
 
     def simulate(self, gains=None, **kwargs):
-        """Monte-Carlo run (see :func:`hierarchy.simulate.simulate`)."""
+        """Monte-Carlo run (see :func:`hierarchy.loop.simulate.simulate`)."""
         from hierarchy.loop.simulate import simulate
 
         return simulate(self.spec, gains, **kwargs)

@@ -165,7 +165,7 @@ def random_gains(spec, seed=3, size=0.3):
 
 
 def dense_objective(spec, gains):
-    """J from the dense closed loop (hierarchy.closedloop.assemble) and
+    """J from the dense closed loop (hierarchy.loop.closedloop.assemble) and
     scipy's Lyapunov solver, independently of the compact fast path."""
     lay = Layout(spec)
     loop = assemble(lay, gains)

@@ -156,7 +156,7 @@ def test_csv_cells_read_back_as_written(swept):
     assert rows[0] == swept.columns
     assert len(rows) == len(swept.rows) + 1
     for got, row in zip(rows[1:], swept.rows):
-        want = [studies._csv_cell(row.get(c)) for c in swept.columns]
+        want = [studies.tables._csv_cell(row.get(c)) for c in swept.columns]
         assert got == [str(w) for w in want]
     # Floats keep every digit: they read back to the same number.
     k = swept.columns.index("objective")

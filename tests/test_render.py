@@ -205,7 +205,7 @@ def test_design_then_render_end_to_end(tmp_path):
 
 
 def test_check_does_not_import_matplotlib():
-    code = ("import sys; from hierarchy.cli import main; import hierarchy.render; "
+    code = ("import sys; from hierarchy.cli import main; import hierarchy.report.drawing; "
             "assert main(['check', 'specs/two-level.yaml']) == 0; "
             "assert 'matplotlib' not in sys.modules, 'matplotlib imported'")
     out = subprocess.run([sys.executable, "-c", code], capture_output=True, text=True, cwd=ROOT, timeout=60)

@@ -1,7 +1,7 @@
 """The structure-exploiting exact evaluation against a plain dense one.
 
 The reference below is the textbook computation (model.md, "Exact
-evaluation"): the full closed loop from :func:`hierarchy.closedloop.assemble`,
+evaluation"): the full closed loop from :func:`hierarchy.loop.closedloop.assemble`,
 one ``scipy.linalg.solve_discrete_lyapunov`` on the whole ``Phi``, every score
 a trace over ``Cov(q) = blkdiag(Sigma, Omega)``, and the gradient from the
 dense adjoint ``Lambda = Phi' Lambda Phi + W`` with ``W`` a dense matrix over

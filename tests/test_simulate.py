@@ -1,4 +1,4 @@
-"""Monte Carlo against the exact stationary scores (hierarchy.simulate)."""
+"""Monte Carlo against the exact stationary scores (hierarchy.loop.simulate)."""
 
 import json
 import math

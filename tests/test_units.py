@@ -1,4 +1,4 @@
-"""Physical units (hierarchy.units and the spec's `units:` section) against
+"""Physical units (hierarchy.spec.units and the spec's `units:` section) against
 the published numbers of the presets and the Gaussian channel capacity."""
 
 import json

@@ -5,7 +5,7 @@ all free gain blocks, using the exact adjoint gradient (two Lyapunov solves
 per evaluation), from several deterministic starts. Budget form is a block
 coordinate descent: the same quasi-Newton on the Lagrangian at the prices
 set by the budgets' multipliers, and a convex allocation of power over the
-links under every budget (CVXPY, :mod:`hierarchy.allocation`) whose dual
+links under every budget (CVXPY, :mod:`hierarchy.design.allocation`) whose dual
 values are the next multipliers (the shadow prices). The final design is
 re-scored exactly; budgets are checked, not assumed.
 """

@@ -24,7 +24,7 @@ def design_budgets(spec: Spec, options: Options | None = None, start: Gains | No
 
     Minimises the weighted error (plus any priced terms) subject to the
     spec's budgets (linear constraints on link powers and areas' activity,
-    see :mod:`hierarchy.allocation`) and reports each budget's shadow price:
+    see :mod:`hierarchy.design.allocation`) and reports each budget's shadow price:
     the Lagrange multiplier at the returned design, i.e. how fast the
     objective falls per unit of extra budget.
 
@@ -33,7 +33,7 @@ def design_budgets(spec: Spec, options: Options | None = None, start: Gains | No
     (and activity prices ``V' mu``) set by the current multipliers,
     warm-started and cut after ``BLOCK_ITER`` iterations. The allocation
     block is a convex program over link powers
-    (:class:`~hierarchy.allocation.Allocation`), calibrated at the current
+    (:class:`~hierarchy.design.allocation.Allocation`), calibrated at the current
     design by the exact slope of the objective in each link's power; its
     dual values are the next multipliers. Every step is cheap (a few dozen
     evaluations and one small conic solve). At a fixed point the design is

@@ -6,7 +6,7 @@ measured in units of its channel's noise (so scaling a link's noise by ``c``
 and its price by ``1/c`` gives the solver the very same problem: model.md's
 scale law), a receiver gain in the inverse units, and the objective relative
 to the weighted prior error. Flattening is private to this module and the
-solver; everything else sees named :class:`~hierarchy.gains.Gains`.
+solver; everything else sees named :class:`~hierarchy.loop.gains.Gains`.
 """
 
 from __future__ import annotations

@@ -109,7 +109,7 @@ class DesignResult:
         What each search of :func:`design` reached (``search``,
         ``objective``, ``status``).
     floor : Floor or None
-        The information floor of the spec (:mod:`hierarchy.floor`), computed
+        The information floor of the spec (:mod:`hierarchy.design.floor`), computed
         apart from the search, or ``None`` when it was not asked for.
     """
 

@@ -138,8 +138,8 @@ def widen(gains: Gains, sub: Spec, spec: Spec, link_id: str, U) -> Gains:
     Examples
     --------
     >>> from hierarchy import load_spec
-    >>> from hierarchy.evaluate import evaluate
-    >>> from hierarchy.problem import Problem
+    >>> from hierarchy.loop.evaluate import evaluate
+    >>> from hierarchy.design.problem import Problem
     >>> spec = load_spec("specs/two-level.yaml")
     >>> sub, U = narrowed(spec, "probe->station-view")
     >>> g = Problem(sub).informed_start()

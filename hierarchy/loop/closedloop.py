@@ -214,7 +214,7 @@ class Layout:
         return out
 
     def unflatten(self, vec: np.ndarray) -> Gains:
-        """The :class:`~hierarchy.gains.Gains` that a flat vector holds."""
+        """The :class:`~hierarchy.loop.gains.Gains` that a flat vector holds."""
         g = Gains()
         for (owner, name), (off, shape) in self.gain_slots.items():
             table = g.links if "->" in owner else g.areas
@@ -283,7 +283,7 @@ class ClosedLoop:
 def assemble(layout: Layout, gains: Gains) -> ClosedLoop:
     """Build the closed-loop matrices of ``layout.spec`` for ``gains``.
 
-    ``gains`` must be complete (see :func:`hierarchy.gains.check_gains`).
+    ``gains`` must be complete (see :func:`hierarchy.loop.gains.check_gains`).
 
     Examples
     --------
@@ -562,7 +562,7 @@ class Structure:
         self.area_start = np.array([zcol[a.name] for a in spec.areas], dtype=int)
         self.n_area_states = layout.n_area_states
         self.kappa = np.array([a.activity_price for a in spec.areas])
-        # The world's stationary part, solved by hierarchy.evaluate on first use.
+        # The world's stationary part, solved by hierarchy.loop.evaluate on first use.
         self.world = None
 
     def parts(self, g: np.ndarray) -> Parts:

@@ -554,7 +554,7 @@ def _row_dots(A: np.ndarray, ia: np.ndarray, B: np.ndarray, ib: np.ndarray) -> n
 
 def flat_cost_and_gradient(layout: Layout, g: np.ndarray, prices=None):
     """:func:`cost_and_gradient` on the flat gain vector of
-    :meth:`Layout.flatten <hierarchy.closedloop.Layout.flatten>`; the
+    :meth:`Layout.flatten <hierarchy.loop.closedloop.Layout.flatten>`; the
     gradient is a vector in the same order (``None`` when unstable).
 
     ``prices`` may also be a function of the link powers (spec order) that

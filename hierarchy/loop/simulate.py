@@ -1,6 +1,6 @@
 """Monte-Carlo check of the exact scores: run the circuit forward in time.
 
-:func:`simulate` runs the same closed loop that :mod:`hierarchy.evaluate`
+:func:`simulate` runs the same closed loop that :mod:`hierarchy.loop.evaluate`
 solves exactly (``xi(t+1) = Psi [xi(t); nu(t)]``, link signals ``s = Hq q``)
 for many steps in several independent chains and reports every per-area error,
 activity, per-link power and the objective as a mean with a confidence
@@ -409,7 +409,7 @@ def compare(scores: Scores, sim: Simulation) -> list:
     Parameters
     ----------
     scores : Scores
-        From :func:`hierarchy.evaluate.score` or :func:`~hierarchy.evaluate.evaluate`.
+        From :func:`hierarchy.loop.evaluate.score` or :func:`~hierarchy.loop.evaluate.evaluate`.
     sim : Simulation
         From :func:`simulate` on the same spec and gains.
 

@@ -42,7 +42,7 @@ Labels
 Title
     The spec's name, the design's status (converged, iteration limit, failed)
     and its objective; budgets with their use and shadow price below.
-Colours are shared with every study figure (:mod:`hierarchy.plots`).
+Colours are shared with every study figure (:mod:`hierarchy.report.plots`).
 
 matplotlib is imported only inside the functions that draw (the Agg canvas,
 never pyplot), so importing this module is cheap and leaves the user's
@@ -678,7 +678,7 @@ def draw_circuit(result, spec=None, width_by="power", ax=None):
     Examples
     --------
     >>> import hierarchy
-    >>> from hierarchy.render import draw_circuit
+    >>> from hierarchy.report.drawing import draw_circuit
     >>> fig = draw_circuit(hierarchy.load("specs/two-level.yaml").design())   # doctest: +SKIP
     >>> fig.hierarchy_links["probe->station-view"].get_linewidth()             # doctest: +SKIP
     8.0

@@ -5,7 +5,7 @@ no scripts, no links to fetch), so it can be mailed or archived as one file
 and opened offline. It shows the design's status and objective, the
 information-theoretic floor and the gap to it when the result has one
 (key ``floor``), the drawing, the area, link and budget tables with a legend
-of their columns (the words of :data:`hierarchy.results.EXPLANATIONS`), why
+of their columns (the words of :data:`hierarchy.report.results.EXPLANATIONS`), why
 each silent link is silent, the spec text that made the design (recorded in
 the result by ``hierarchy design --json``) and the tool versions.
 
@@ -152,7 +152,7 @@ def report_html(data, spec=None) -> str:
     ----------
     data : dict
         A result as written by ``hierarchy design --json`` (checked by
-        :func:`hierarchy.render.read_result`), or a ``DesignResult``.
+        :func:`hierarchy.report.drawing.read_result`), or a ``DesignResult``.
     spec : Spec, optional
         Only used to draw the graph; the result alone is enough.
 

@@ -65,7 +65,7 @@ def _source(spec) -> dict | None:
 
 
 def scores_to_dict(spec, scores, gains=None) -> dict:
-    """JSON-ready dict of exact :class:`~hierarchy.evaluate.Scores`."""
+    """JSON-ready dict of exact :class:`~hierarchy.loop.evaluate.Scores`."""
     from hierarchy import __version__
     from hierarchy.graph import build_graph
 

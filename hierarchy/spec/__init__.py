@@ -1,4 +1,4 @@
-"""Read a circuit spec (YAML, version 1) into the objects of :mod:`hierarchy.model`.
+"""Read a circuit spec (YAML, version 1) into the objects of :mod:`hierarchy.spec.model`.
 
 One key table per section of the file lists its keys: whether each is required,
 its type, its default and a one-line description. The parser checks the file

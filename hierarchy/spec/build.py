@@ -429,7 +429,7 @@ def _select_links(at: _At, choice: tuple, links: tuple, node_dims: dict):
 
 def _check_costs(drafts: list, links: tuple, budgets: tuple) -> None:
     """Every noisy link needs a cost, and every costed link needs noise
-    (:func:`hierarchy.rules.check_costs`), named at its place in the file."""
+    (:func:`hierarchy.spec.rules.check_costs`), named at its place in the file."""
     by_id = {draft.id: draft for draft in drafts}
 
     def where(link, key):

@@ -194,7 +194,7 @@ class Spec:
     version: int = 1
     warnings: tuple = ()
     path: str | None = None
-    units: object = None  # hierarchy.units.Units, or None: the model's own units only
+    units: object = None  # hierarchy.spec.units.Units, or None: the model's own units only
 
     def sensor(self, name):
         return next(s for s in self.sensors if s.name == name)

@@ -1,6 +1,6 @@
-"""The rules of a well-posed circuit, on the typed objects of :mod:`hierarchy.model`.
+"""The rules of a well-posed circuit, on the typed objects of :mod:`hierarchy.spec.model`.
 
-This is the one home of every rule about a :class:`~hierarchy.model.Spec`
+This is the one home of every rule about a :class:`~hierarchy.spec.model.Spec`
 that does not need the positions of a YAML file: the numeric limits, the
 stability margin, covariances, matrix shapes, the world's stationarity and
 the costs of noisy links. The spec reader (:mod:`hierarchy.spec`) calls these
@@ -50,7 +50,7 @@ __all__ = [
     "check_spec",
 ]
 
-#: A world (and a closed loop, see :mod:`hierarchy.evaluate`) is stable when
+#: A world (and a closed loop, see :mod:`hierarchy.loop.evaluate`) is stable when
 #: its spectral radius is below this: a margin keeps rounding from deciding.
 STABLE_RADIUS = 1.0 - 1e-9
 #: Limit on the world's total size, on the sum of sensor, area and link sizes.
@@ -378,7 +378,7 @@ def check_spec(spec: Spec, place=None, error=SpecError) -> Spec:
     """Check a whole circuit against every rule of this module.
 
     This is what a spec built in Python (the dataclasses of
-    :mod:`hierarchy.model`) or edited by a study goes through; the spec
+    :mod:`hierarchy.spec.model`) or edited by a study goes through; the spec
     reader applies the same rules section by section.
 
     Parameters
@@ -399,7 +399,7 @@ def check_spec(spec: Spec, place=None, error=SpecError) -> Spec:
 
     Examples
     --------
-    >>> from hierarchy.model import StateBlock, World, Sensor, Area, Spec, frozen_array
+    >>> from hierarchy.spec.model import StateBlock, World, Sensor, Area, Spec, frozen_array
     >>> world = World((StateBlock("x", 1, frozen_array([[1.0]]), frozen_array([[1.0]])),))
     >>> check_spec(Spec("drift", world, (Sensor("eye", {"x": frozen_array([[1.0]])}, frozen_array([[0.1]])),),
     ...                 (Area("v", 1, ("x",)),)))

@@ -8,7 +8,7 @@ energy. Two maps are offered:
 * ``bits`` (the default, and what every preset uses): a link carries
   ``b`` bits per step, its Gaussian channel capacity at the power it sends
   (``1/2 log2 det(I + N^-1 Cov s)``, the ``bits`` of
-  :class:`~hierarchy.evaluate.LinkScore`). It costs ``b / bits_per_event``
+  :class:`~hierarchy.loop.evaluate.LinkScore`). It costs ``b / bits_per_event``
   events per step, each of ``energy_per_event`` joules. This assumes the
   physical channel codes at capacity: a real code needs more events.
 * ``power``: ``E||s||^2 / power_per_event`` events per step, a linear map

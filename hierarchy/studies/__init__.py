@@ -35,7 +35,7 @@ path's.
 
 A noise set by a number replaces the whole covariance by that multiple of the
 identity (a vector link's off-diagonal terms are dropped). Every modified
-spec is checked by :func:`hierarchy.rules.check_spec`, the rules the spec
+spec is checked by :func:`hierarchy.spec.rules.check_spec`, the rules the spec
 reader applies (a priced or budgeted link needs positive definite noise, a
 noisy link needs a price or a budget, the world must stay stable within the
 margin, a relay has no weight) before any point

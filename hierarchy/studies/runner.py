@@ -156,7 +156,7 @@ def run_point(spec: Spec, options=None, start=None) -> dict:
         start = gains_from_dict(start)
     try:
         # No floor per point: one convex program each, for a bound that a
-        # study of one spec family can compute once (hierarchy.floor).
+        # study of one spec family can compute once (hierarchy.design.floor).
         result = design(spec, replace(opts, probe_iter=0) if start is not None else opts, start=start,
                         compare_unpinned=False, floor=False)
     except HierarchyError as err:
