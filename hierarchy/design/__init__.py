@@ -10,8 +10,9 @@ values are the next multipliers (the shadow prices). The final design is
 re-scored exactly; budgets are checked, not assumed.
 """
 
-# The parts load when a name is first used, so that importing one part
-# (or the package) does not import them all.
+from hierarchy._lazy import lazy_parts
+
+# The parts load when a name is first used (hierarchy._lazy).
 _WHERE = {
     'BUDGET_TOL': 'result',
     'AGREE_RTOL': 'result',
@@ -48,16 +49,4 @@ _WHERE = {
 
 __all__ = list(_WHERE)
 
-
-def __getattr__(name):
-    if name not in _WHERE:
-        raise AttributeError(f"module {__name__!r} has no attribute {name!r}")
-    import importlib
-
-    value = getattr(importlib.import_module(f"{__name__}.{_WHERE[name]}"), name)
-    globals()[name] = value
-    return value
-
-
-def __dir__():
-    return sorted(set(globals()) | set(_WHERE))
+__getattr__, __dir__ = lazy_parts(__name__, _WHERE)

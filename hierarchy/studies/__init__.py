@@ -70,8 +70,9 @@ Examples
 [{'from': 0.0316..., 'to': 1.0, 'points': 4, 'below': 0.01, 'above': None}]
 """
 
-# The parts load when a name is first used, so that importing one part
-# (or the package) does not import them all.
+from hierarchy._lazy import lazy_parts
+
+# The parts load when a name is first used (hierarchy._lazy).
 _WHERE = {
     'MAX_POINTS': 'paths',
     'ValuePath': 'paths',
@@ -108,16 +109,4 @@ _WHERE = {
 
 __all__ = list(_WHERE)
 
-
-def __getattr__(name):
-    if name not in _WHERE:
-        raise AttributeError(f"module {__name__!r} has no attribute {name!r}")
-    import importlib
-
-    value = getattr(importlib.import_module(f"{__name__}.{_WHERE[name]}"), name)
-    globals()[name] = value
-    return value
-
-
-def __dir__():
-    return sorted(set(globals()) | set(_WHERE))
+__getattr__, __dir__ = lazy_parts(__name__, _WHERE)
