@@ -187,3 +187,26 @@ def test_two_levels_find_the_basin_of_a_rank_one_residual():
     assert res.converged
     assert res.objective <= heavy.objective * (1 + 1e-6)
     assert any(s["search"].startswith("narrow ") for s in res.searches)
+
+
+def test_the_kept_design_says_when_it_is_lower_than_every_converged_search():
+    """The lowest usable design is kept even if its search did not converge,
+    but its status stays unconverged and its message names the converged
+    search and how far above it ended."""
+    from types import SimpleNamespace as NS
+
+    _best_of = importlib.import_module("hierarchy.design.search")._best_of
+
+    def res(objective, converged, message):
+        return NS(objective=objective, converged=converged, status="converged" if converged else "failed",
+                  message=message, budgets={}, iterations=10, evaluations=20, restarts=1)
+
+    settled, stuck = res(1.0, True, "ok"), res(0.9, False, "line search cannot make progress")
+    best = _best_of([("multistart", settled), ("feed-forward first", stuck)])
+    assert best is stuck and best.status == "failed"
+    assert "not a confirmed local optimum" in best.message and "'multistart'" in best.message
+    assert "'feed-forward first'" in best.message and "0.11 higher" in best.message
+    assert best.iterations == 20 and best.evaluations == 40
+    # A converged best keeps its own message untouched.
+    settled, worse = res(1.0, True, "ok"), res(1.2, False, "iteration limit")
+    assert _best_of([("multistart", worse), ("feed-forward first", settled)]).message == "ok"

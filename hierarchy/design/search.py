@@ -147,10 +147,25 @@ def _usable(result) -> bool:
 
 def _best_of(searches) -> DesignResult:
     """The lowest objective among the searches whose designs are usable
-    (finite, budgets met), preferring a converged one on a tie."""
+    (finite, budgets met), preferring a converged one on a tie.
+
+    The lowest design is kept even when its search did not converge (its
+    objective is exact and its budgets are met, so it is the better
+    circuit), but its message then says so and names the best converged
+    search with its objective: the status stays the unconverged one's, so
+    nothing calls the kept design a local optimum."""
     results = [r for _, r in searches]
     usable = [r for r in results if _usable(r)] or results
     best = min(usable, key=lambda r: (r.objective, not r.converged))
+    if not best.converged:
+        done = [(name, r) for name, r in searches if r.converged and _usable(r)]
+        if done:
+            name, r = min(done, key=lambda nr: nr[1].objective)
+            own = next(n for n, x in searches if x is best)
+            gap = (r.objective - best.objective) / max(abs(best.objective), F_FLOOR)
+            best.message = (f"{best.message}; this is the lowest objective found (search '{own}'), "
+                            f"not a confirmed local optimum; the best converged search ('{name}') "
+                            f"reached {r.objective:.9g} ({gap:.2g} higher, relative)")
     best.iterations = sum(r.iterations for r in results)
     best.evaluations = sum(r.evaluations for r in results)
     best.restarts = sum(r.restarts for r in results)
