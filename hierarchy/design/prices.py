@@ -46,7 +46,7 @@ def _solve_prices(prob: Problem, opts: Options, starts=None, polish_iter=None, w
     probes = []
     for x0 in starts:
         out = minimise(fun, x0, max_iter=min(opts.probe_iter, opts.max_iter), gtol=opts.gtol, ftol=opts.ftol,
-                       unit=prob.units(x0))
+                       unit=prob.units(x0), value=prob.value)
         probes.append(out)
     usable = [o for o in probes if np.isfinite(o.f)]
     if not usable:
@@ -71,12 +71,12 @@ def _polish(prob: Problem, x0, opts: Options, max_iter: int, wake: bool = True, 
     (relative). The quasi-Newton curvature is carried from round to round.
     Returns the best outcome and the iterations."""
     best, x, iterations, wakes, balances = None, x0, 0, 0, 0
-    last = prob.value_and_grad(x0)[0] if settled else None
+    last = prob.value(x0) if settled else None
     converged_f = np.inf  # objective at the last converged round
     curvature = None
     while iterations < max_iter:
         out = minimise(prob.value_and_grad, x, max_iter=min(CHUNK, max_iter - iterations),
-                       gtol=opts.gtol, ftol=opts.ftol, unit=prob.units(x), curvature=curvature)
+                       gtol=opts.gtol, ftol=opts.ftol, unit=prob.units(x), curvature=curvature, value=prob.value)
         iterations += out.iterations
         curvature = out.curvature
         # (Switching a link off may cost rounding, which the test allows.)
@@ -144,7 +144,7 @@ def _balance_links(prob: Problem, best):
                 trial[sl] *= np.exp(t)
             for sl in receivers:
                 trial[sl] *= np.exp(-t)
-            return prob.value_and_grad(trial)[0], trial
+            return prob.value(trial), trial
 
         h = 0.05
         (fp, _), (fm, _) = at(h), at(-h)
@@ -202,7 +202,7 @@ def _finish(prob: Problem, theta, best, iterations, nstarts, seconds, form, shad
     tested = checked[1] if checked is not None and checked[0] == best.f else None
     silent = _silence_reasons(prob, powers, tested, shadow)
     return DesignResult(spec, status, message, gains, scores, scores.objective, form,
-                        iterations=iterations, restarts=nstarts, evaluations=prob.evaluations,
+                        iterations=iterations, restarts=nstarts, evaluations=prob.solves,
                         seconds=seconds, grad_norm=best.grad_norm, silent=silent)
 
 

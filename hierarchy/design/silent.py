@@ -53,7 +53,7 @@ def _switch_off_fading(prob: Problem, best):
         for sl in sender + receivers:
             trial[sl] = 0.0
         if np.any(trial != theta):
-            f, _ = prob.value_and_grad(trial)
+            f = prob.value(trial)
             if np.isfinite(f) and f <= best.f + 1e-12 * max(abs(best.f), F_FLOOR):
                 theta, changed = trial, True
     return theta if changed else None
@@ -263,7 +263,7 @@ def _wake_streams(prob: Problem, best, opts: Options, budget: int = STREAM_ITER 
                 for sl in prob.slices(node, "M"):
                     theta[sl] = ref[sl]
         for _ in range(12):  # the woken receivers must leave the loop stable
-            if np.isfinite(prob.value_and_grad(theta)[0]):
+            if np.isfinite(prob.value(theta)):
                 break
             for link in links:
                 for sl in prob.receiver_slices(link.id):
@@ -271,7 +271,7 @@ def _wake_streams(prob: Problem, best, opts: Options, budget: int = STREAM_ITER 
         else:
             continue
         out = minimise(prob.value_and_grad, theta, max_iter=min(STREAM_ITER, budget - used), gtol=opts.gtol,
-                       ftol=opts.ftol, unit=prob.units(theta))
+                       ftol=opts.ftol, unit=prob.units(theta), value=prob.value)
         used += out.iterations
         for lid in ids:
             prob.stream_cover.setdefault(lid, ids)
@@ -356,13 +356,13 @@ def _best_receiver_step(prob: Problem, theta, receiver_slices, f0):
         return None
     d /= norm
     slope, t = -norm, 1e-3
-    ft, _ = prob.value_and_grad(theta + t * d)
+    ft = prob.value(theta + t * d)
     if not np.isfinite(ft):
         return None
     curvature = 2 * (ft - f - slope * t) / t ** 2
     step = -slope / curvature if curvature > 0 else 10 * t
     for s in (step, 0.5 * step, 0.1 * step):
-        fs, _ = prob.value_and_grad(theta + s * d)
+        fs = prob.value(theta + s * d)
         if np.isfinite(fs) and fs < f0 - 1e-12 * max(abs(f0), F_FLOOR):
             return theta + s * d
     return None

@@ -217,7 +217,7 @@ class _Solution:
     parts: object
     schur: _Schur
     Sigma: np.ndarray
-    HS: np.ndarray          # H Sigma (link rows over xi)
+    hs: np.ndarray          # H Sigma at the entries of H's pattern
     row_power: np.ndarray   # E s_i^2 for every link row
 
 
@@ -242,20 +242,24 @@ def _solve(layout: Layout, g: np.ndarray):
     PS = Pzx @ world.Sigma
     Szx = _stein(sch, False, world.schur, False, PS @ world.A.T)
     cross = Pzz @ Szx @ Pzx.T
-    V = p.Q1 @ st.Omega_v @ p.Q1.T + p.Q2 @ p.Q2_omega.T
+    vo, vq, dst = st.v2
+    V = p.Q1 @ st.Omega_v @ p.Q1.T
+    V += np.bincount(dst, weights=p.q2_omega[vo] * p.q2[vq], minlength=st.nz * st.nz).reshape(st.nz, st.nz)
     Szz = _stein(sch, False, sch, False, PS @ Pzx.T + cross + cross.T + V)
     Sigma = np.empty((st.nxi, st.nxi))
     Sigma[:nx, :nx] = world.Sigma
     Sigma[nx:, :nx] = Szx
     Sigma[:nx, nx:] = Szx.T
     Sigma[nx:, nx:] = 0.5 * (Szz + Szz.T)
-    HS = p.H @ Sigma
-    row_power = np.einsum("ij,ij->i", HS, p.H) + np.einsum("ij,ij->i", p.Gv @ st.Omega_v, p.Gv)
+    f1, f2, key = st.hh
+    hs = np.bincount(f2, weights=p.h[f1] * Sigma.ravel()[key], minlength=len(p.h))
+    row_power = np.bincount(st.h_rows, weights=p.h * hs, minlength=st.m)
+    row_power += np.einsum("ij,ij->i", p.Gv @ st.Omega_v, p.Gv)
     row_power += np.bincount(st.P.rows, weights=p.P_omega * p.p, minlength=st.m)
     if not (np.all(np.isfinite(Sigma)) and np.all(np.isfinite(row_power))):
         # Stable on paper, but the covariances overflow: no usable regime.
         return float("inf"), None
-    return radius, _Solution(p, sch, Sigma, HS, row_power)
+    return radius, _Solution(p, sch, Sigma, hs, row_power)
 
 
 def area_radius(layout: Layout, g: np.ndarray) -> float:
@@ -327,9 +331,11 @@ def link_covariances(layout: Layout, gains: Gains) -> list | None:
 def _link_covariances(layout: Layout, sol: _Solution) -> list:
     st, p = layout.structure, sol.parts
     GvO = p.Gv @ st.Omega_v
+    H = st.dense_h(p.h)
+    HS = H @ sol.Sigma
     out = [None] * len(layout.links)
     for links, rows in st.link_groups:  # links of one signal size, batched
-        cov = sol.HS[rows] @ p.H[rows].transpose(0, 2, 1) + GvO[rows] @ p.Gv[rows].transpose(0, 2, 1)
+        cov = HS[rows] @ H[rows].transpose(0, 2, 1) + GvO[rows] @ p.Gv[rows].transpose(0, 2, 1)
         for i, c in zip(links, cov):
             out[i] = c
     for i, (e0, shape) in st.p_blocks.items():  # the paired prediction's noise, through P
@@ -540,16 +546,8 @@ def cost_and_gradient(layout: Layout, gains: Gains, prices=None):
 
 def _row_dots(A: np.ndarray, ia: np.ndarray, B: np.ndarray, ib: np.ndarray) -> np.ndarray:
     """``A[ia[k]] . B[ib[k]]`` for every ``k``: the entries of ``A B'`` that a
-    sparse gain pattern needs. Rows are gathered a block of about 64 KiB at
-    a time: malloc reuses blocks that small, while megabyte-sized temporaries
-    go back to the system after each evaluation and cost page faults on the
-    next (a third of an evaluation's time at 300 links)."""
-    out = np.empty(len(ia))
-    step = max(1, 8192 // max(A.shape[1], 1))
-    for start in range(0, len(ia), step):
-        stop = start + step
-        out[start:stop] = np.einsum("ij,ij->i", A[ia[start:stop]], B[ib[start:stop]])
-    return out
+    sparse gain pattern needs."""
+    return np.einsum("ij,ij->i", A[ia], B[ib])
 
 
 def flat_cost_and_gradient(layout: Layout, g: np.ndarray, prices=None):
@@ -575,58 +573,91 @@ def flat_cost_and_gradient(layout: Layout, g: np.ndarray, prices=None):
     >>> lay = Layout(spec)                                                # doctest: +SKIP
     >>> J, dg, radius = flat_cost_and_gradient(lay, lay.flatten(gains))  # doctest: +SKIP
     """
-    st = layout.structure
     radius, sol = _solve(layout, g)
     if sol is None:
         return float("inf"), None, radius
+    J, lam = _priced_value(layout, sol, prices)
+    return J, _gradient(layout, g, sol, lam), radius
+
+
+def flat_cost(layout: Layout, g: np.ndarray, prices=None):
+    """The objective of :func:`flat_cost_and_gradient` alone (``inf`` when
+    unstable) and its radius: for trial points that need no gradient, at
+    about half the cost (no adjoint)."""
+    radius, sol = _solve(layout, g)
+    if sol is None:
+        return float("inf"), radius
+    return _priced_value(layout, sol, prices)[0], radius
+
+
+def _priced_value(layout: Layout, sol: _Solution, prices):
+    """``J`` of a solved design and the price of every link row."""
+    st = layout.structure
     if callable(prices):
         prices = prices(_link_powers(st, sol))
     prices = layout.price if prices is None else np.asarray(prices, dtype=float)
-    world = _world_part(layout)
-    p, Sigma, nx, n = sol.parts, sol.Sigma, st.nx, st.n
     lam = prices[st.row_link]
     err = _error_rows(st, sol)
-    activity = np.add.reduceat(np.diag(Sigma)[nx:nx + st.n_area_states], st.area_start)
-    J = float(st.w_rows @ err + st.kappa @ activity + lam @ sol.row_power)
+    activity = np.add.reduceat(np.diag(sol.Sigma)[st.nx:st.nx + st.n_area_states], st.area_start)
+    return float(st.w_rows @ err + st.kappa @ activity + lam @ sol.row_power), lam
 
+
+def _gradient(layout: Layout, g: np.ndarray, sol: _Solution, lam: np.ndarray) -> np.ndarray:
+    """The exact gradient of :func:`flat_cost_and_gradient` at a solved
+    design with link-row prices ``lam``. Every product with the link rows
+    is taken on their sparse patterns (see ``Structure._patterns``): only
+    the entries the gains sit on are ever formed."""
+    st = layout.structure
+    world = _world_part(layout)
+    p, Sigma, nx, nz = sol.parts, sol.Sigma, st.nx, st.nz
+    h = p.h
     # Adjoint on the area rows. W's area rows: errors and activity (fixed)
     # plus the priced link rows H' diag(price) H.
-    LH = lam[:, None] * p.H
-    Wz = st.Wz_fixed + p.H[:, nx:].T @ LH
+    f1, f2, dst = st.hh_z
+    Wz = st.Wz_fixed + np.bincount(dst, weights=lam[st.h_rows[f1]] * h[f1] * h[f2],
+                                   minlength=nz * st.nxi).reshape(nz, st.nxi)
     Pzx, Pzz = p.Phi_z[:, :nx], p.Phi_z[:, nx:]
     Azz = _stein(sol.schur, True, sol.schur, True, Wz[:, nx:])
     Azz = 0.5 * (Azz + Azz.T)
     Azx = _stein(sol.schur, True, world.schur, True, Pzz.T @ Azz @ Pzx + Wz[:, :nx])
-    # Y = 2 (Lambda Psi Cov(q)) on the area rows, over xi, sensor noises, link noises.
+    # Y = 2 (Lambda Psi Cov(q)) on the area rows, over xi, sensor noises, link
+    # noises; the last one only at the entries of Q2 (those the gains read).
     AP = Azz @ p.Phi_z
     AP[:, :nx] += Azx @ world.A
     Yx = 2.0 * AP @ Sigma
     Yv = 2.0 * Azz @ (p.Q1 @ st.Omega_v)
-    Ye = 2.0 * Azz @ p.Q2_omega
+    vo, vq, dst = st.v2
+    ye = 2.0 * np.bincount(vq, weights=Azz.ravel()[dst] * p.q2_omega[vo], minlength=len(p.q2))
+    Yxf = Yx.ravel()
 
     # With delayed links, one more slot takes (and drops) the derivatives of their fixed entries.
     dg = np.zeros(len(g) + st.delays)
     dg[st.M.at] = Yx[st.M.rows, nx + st.M.cols]
     if st.delays:
         dg[st.Kd.at] = Yx[st.Kd.rows, nx + st.Kd.cols]
-    K = st.K
+    K, P = st.K, st.P
+    ke, kh, kdst = st.km_h
+    pk_e, pk_f = st.p_k
     if len(K.at):
-        PY = st.Pm.matmul(p.p, Ye.T)  # (Ye Pm')': the -Pm part of what arrives, over link noises
-        dg[K.at] = (_row_dots(Yx, K.rows, p.H, K.cols) + _row_dots(Yv, K.rows, p.Gv, K.cols)
-                    + Ye[K.rows, K.cols] - PY[K.cols, K.rows])
-    gR = st.KmT.matmul(p.k, Yx) + 2.0 * lam[:, None] * sol.HS
+        # The -Pm part of what arrives, over link noises: (Pm Ye')' at K's entries.
+        dg[K.at] = (np.bincount(ke, weights=Yxf[kdst] * h[kh], minlength=len(K.at))
+                    + _row_dots(Yv, K.rows, p.Gv, K.cols) + ye[st.q_k]
+                    - np.bincount(pk_f, weights=p.p[pk_e] * ye[st.q_p], minlength=len(K.at)))
+    # The gradient on what is sent, g_R = Km' Y + 2 diag(price) H Sigma, at H's entries.
+    gr = np.bincount(kh, weights=p.k[ke] * Yxf[kdst], minlength=len(h)) + 2.0 * lam[st.h_rows] * sol.hs
     gRv = st.KmT.matmul(p.k, Yv) + 2.0 * lam[:, None] * (p.Gv @ st.Omega_v)
-    P = st.P
+    hdst, pe, bf = st.h_p
     if len(P.at):
-        e, f = st.p_k
-        KYe = np.bincount(e, weights=p.k[f] * Ye[K.rows[f], P.cols[e]], minlength=len(P.at))
-        dg[P.at] = -(_row_dots(gR, P.rows, p.B, P.cols) + KYe
+        KYe = np.bincount(pk_e, weights=p.k[pk_f] * ye[st.q_p], minlength=len(P.at))
+        dg[P.at] = -(np.bincount(pe, weights=gr[hdst] * p.b[bf], minlength=len(P.at)) + KYe
                      - 2.0 * lam[P.rows] * p.P_omega)
-    gB = gR - st.PmT.matmul(p.p, gR)
+    # g_B = (I - Pm)' g_R at B's entries.
+    gb = gr[st.h_b] - np.bincount(bf, weights=p.p[pe] * gr[hdst], minlength=len(st.b_rows))
     gBv = gRv - st.PmT.matmul(p.p, gRv)
-    dg[st.Gz.at] = gB[st.Gz.rows, nx + st.Gz.cols]
+    dg[st.Gz.at] = gb[st.b_gz]
     if st.delays:
-        dg[st.Pd.at] = -gB[st.Pd.rows, nx + st.Pd.cols]
+        dg[st.Pd.at] = -gb[st.b_pd]
     Gv = st.Gv
-    dg[Gv.at] = _row_dots(gB[:, :n], Gv.rows, st.C_all, Gv.cols) + gBv[Gv.rows, Gv.cols]
-    return J, dg[:len(g)], radius
+    bdst, gi, cv = st.b_gv
+    dg[Gv.at] = np.bincount(gi, weights=gb[bdst] * cv, minlength=len(Gv.at)) + gBv[Gv.rows, Gv.cols]
+    return dg[:len(g)]
