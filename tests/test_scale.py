@@ -243,3 +243,27 @@ def test_exact_evaluation_builds_no_dense_noise_covariance():
     cost_and_gradient(layout, gains)
     score(layout, gains)
     assert "Omega" not in vars(layout)
+
+
+def test_search_keeps_a_margin_from_the_stability_edge():
+    # An area whose own memory sits at radius 1 - 1e-7 is stable (its scores
+    # exist) but beyond the search's margin: the search sees it as forbidden.
+    from hierarchy.design.problem import SEARCH_MARGIN, Problem
+    from hierarchy.loop.evaluate import flat_cost
+
+    spec = parse_spec("""
+spec: 1
+world: {states: {x: {dim: 1, dynamics: 0.9, noise: 0.1}}}
+sensors: {s: {observes: {x: 1.0}, noise: 0.2}}
+areas: {a: {tracks: x}}
+links:
+  - {from: s, to: a, kind: residual, noise: 0.05, price: 0.1}
+""")
+    prob = Problem(spec)
+    theta = np.zeros(prob.size)
+    (sl,) = prob.slices("a", "M")
+    for edge, searchable in ((1 - 0.1 * SEARCH_MARGIN, False), (1 - 10 * SEARCH_MARGIN, True)):
+        theta[sl] = edge
+        assert np.isfinite(flat_cost(prob.layout, prob.flat(theta))[0])
+        assert np.isfinite(prob.value(theta)) == searchable
+        assert (prob.value_and_grad(theta)[1] is not None) == searchable

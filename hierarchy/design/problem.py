@@ -20,6 +20,15 @@ from hierarchy.loop.gains import Gains, gain_shapes, pinned_gains
 from hierarchy.memory import keep_freed_memory
 from hierarchy.spec.model import PREDICTION, Spec
 
+#: The design search keeps the area block's spectral radius below
+#: ``1 - SEARCH_MARGIN``: closer to the edge the covariances grow like
+#: ``1 / (1 - radius)`` and a line search that walks an area there (a mode
+#: that costs nothing, say) is left with steps too small to move at all
+#: (a 64-area design once stopped at radius 1 - 1.8e-8, "line search cannot
+#: make progress"). Scores of given gains still accept any stable loop
+#: (:data:`~hierarchy.spec.rules.STABLE_RADIUS`).
+SEARCH_MARGIN = 1e-6
+
 #: Evaluations made by every :class:`Problem` of this process, for progress
 #: reports from another thread (see ``hierarchy.cli``); only ever increased.
 EVALUATIONS = [0]
@@ -173,7 +182,7 @@ class Problem:
             return last[1:]
         g = self.flat(theta)
         self.solves += 1
-        radius, sol = _solve(self.layout, g)
+        radius, sol = _solve(self.layout, g, SEARCH_MARGIN)
         self._last = (np.array(theta, dtype=float), g, radius, sol)
         return g, radius, sol
 
@@ -182,7 +191,8 @@ class Problem:
 
     def value_and_grad(self, theta: np.ndarray):
         """Relative objective ``J / reference`` and its gradient in solver
-        units (``inf, None`` when the closed loop is unstable)."""
+        units (``inf, None`` when the closed loop is unstable, or its area
+        block within :data:`SEARCH_MARGIN` of the edge)."""
         self.evaluations += 1
         EVALUATIONS[0] += 1
         g, radius, sol = self._solution(theta)

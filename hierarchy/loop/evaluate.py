@@ -221,9 +221,10 @@ class _Solution:
     row_power: np.ndarray   # E s_i^2 for every link row
 
 
-def _solve(layout: Layout, g: np.ndarray):
+def _solve(layout: Layout, g: np.ndarray, margin: float = 0.0):
     """Stationary regime of the flat gains ``g``: ``(radius, _Solution)``,
-    with ``None`` for the solution when the loop is unstable.
+    with ``None`` for the solution when the loop is unstable (or the area
+    block's radius is not below ``1 - margin``).
 
     The world block does not depend on the gains, so only the area part is
     solved: a Stein equation for ``Sigma_zx`` and a Lyapunov equation for
@@ -237,7 +238,7 @@ def _solve(layout: Layout, g: np.ndarray):
     Pzx, Pzz = p.Phi_z[:, :nx], p.Phi_z[:, nx:]
     sch = _Schur(Pzz)
     radius = max(world.radius, sch.radius)
-    if not radius < STABLE_RADIUS:
+    if not (radius < STABLE_RADIUS and sch.radius < 1.0 - margin):
         return radius, None
     PS = Pzx @ world.Sigma
     Szx = _stein(sch, False, world.schur, False, PS @ world.A.T)
