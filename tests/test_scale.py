@@ -232,7 +232,6 @@ def test_line_search_by_value_walks_the_same_iterates():
     assert prob.solves - solves <= solves
 
 
-@pytest.mark.xfail(strict=True, reason="the final-score residual check (issue 16) builds layout.Omega; to be moved onto the compact structure")
 def test_exact_evaluation_builds_no_dense_noise_covariance():
     # Memory at scale: the dense (nu x nu) noise covariance and the (nq x nq)
     # cost matrix are never formed; only Layout.Omega would build the former.

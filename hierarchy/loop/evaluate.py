@@ -434,6 +434,23 @@ def _ill_conditioned(what: str) -> UnstableError:
             "`hierarchy design` finds well-behaved gains")
 
 
+def _noise_through(layout: Layout, Gamma: np.ndarray):
+    """``Gamma Omega Gamma'`` and the diagonal of ``Omega``, from the noise
+    blocks of the compact structure (world, sensors, link noises as sparse
+    entries) instead of the dense ``(dim nu x dim nu)`` ``Omega``, which at
+    2,000 links holds millions of zeros."""
+    import scipy.sparse as sp
+
+    st = layout.structure
+    n, nv, m = st.n, st.nv, st.m
+    Q = layout.spec.world.Q
+    Gw, Gv, Ge = Gamma[:, :n], Gamma[:, n:n + nv], Gamma[:, n + nv:]
+    eta = sp.csr_matrix((st.omega_eta, (st.eta.rows, st.eta.cols)), shape=(m, m))
+    noise = Gw @ Q @ Gw.T + Gv @ st.Omega_v @ Gv.T + np.asarray((eta @ Ge.T).T) @ Ge.T
+    diag = np.concatenate([np.diag(Q), np.diag(st.Omega_v), eta.diagonal()])
+    return noise, diag
+
+
 def check_scores(layout: Layout, gains: Gains, Sigma: np.ndarray, scores: Scores) -> Scores:
     """Check final scores before anyone sees them, independently of the
     fast path that computed them: ``Sigma`` must solve the Lyapunov equation
@@ -453,8 +470,7 @@ def check_scores(layout: Layout, gains: Gains, Sigma: np.ndarray, scores: Scores
     from hierarchy.loop.closedloop import assemble
 
     loop = assemble(layout, gains)
-    Omega = layout.Omega
-    noise = loop.Gamma @ Omega @ loop.Gamma.T
+    noise, omega_diag = _noise_through(layout, loop.Gamma)
     moved = loop.Phi @ Sigma @ loop.Phi.T
     size = np.linalg.norm(Sigma) + np.linalg.norm(moved) + np.linalg.norm(noise)
     if not np.isfinite(size):
@@ -463,7 +479,7 @@ def check_scores(layout: Layout, gains: Gains, Sigma: np.ndarray, scores: Scores
     if residual > RESIDUAL_RTOL * size:
         raise _ill_conditioned(f"the stationary covariance solves its Lyapunov equation only to a relative "
                                f"residual of {residual / size:.2g} (at most {RESIDUAL_RTOL:g} is trusted)")
-    scale = max(float(np.max(np.diag(Sigma), initial=0.0)), float(np.max(np.diag(Omega), initial=0.0)))
+    scale = max(float(np.max(np.diag(Sigma), initial=0.0)), float(np.max(omega_diag, initial=0.0)))
     nxi = layout.nxi
     if nxi and scale > 0:
         try:
