@@ -398,3 +398,27 @@ def test_group_tested_switch_off_silences_the_links_one_by_one_tests_do(areas, s
     assert prob.value(grouped) <= bar
     assert np.count_nonzero(grouped != best.x) > 0
     assert prob.values - values - 1 < len(spec.links)  # fewer values than one per link
+
+
+@pytest.mark.parametrize("areas,seed", [(10, 0), (12, 1)])
+def test_active_set_design_is_no_worse_than_the_whole_circuit_design(areas, seed, monkeypatch):
+    # The active-set design (used above ACTIVE_GAINS free gains) designs only
+    # the links that carry power and tests the rest for a wake-up in the
+    # whole circuit; forced on here for circuits small enough to compare
+    # with the design of the whole circuit at once.
+    import importlib
+
+    from hierarchy.spec.generate import generate_spec_text
+
+    P = importlib.import_module("hierarchy.design.prices")
+    spec = parse_spec(generate_spec_text(areas=areas, levels=areas // 2, density=0.3, seed=seed))
+    whole = design_prices(spec, FAST)
+    monkeypatch.setattr(P, "ACTIVE_GAINS", 0)
+    active = design_prices(spec, FAST)
+    assert active.converged, active.message
+    assert active.objective <= whole.objective + 1e-6 * abs(whole.objective)
+    # Its silent links were tested in the whole circuit at the returned design
+    # no less than by the whole design (where a last wake-up bought less than
+    # ACTIVE_GAIN, the links are honestly reported untested).
+    untested = [sum(v["verdict"] == "untested" for v in r.silent.values()) for r in (active, whole)]
+    assert active.silent and untested[0] <= untested[1]

@@ -10,6 +10,7 @@ from hierarchy.loop.evaluate import link_covariances, link_powers
 from hierarchy.design.problem import Problem
 from hierarchy.design.quasinewton import F_FLOOR, minimise
 from hierarchy.design.result import Options
+from hierarchy.design.subcircuit import embed
 
 __all__ = ['SILENT_FRACTION', 'FADING', 'WAKE_DELTAS', 'SCREEN_MIN', 'STREAM_ITER', 'MAX_STREAMS', 'STREAM_SCALES']
 
@@ -236,7 +237,7 @@ def _streams(prob: Problem, powers: dict):
     return sorted(streams, key=len), dead
 
 
-def _wake_streams(prob: Problem, best, opts: Options, budget: int = STREAM_ITER * MAX_STREAMS):
+def _wake_streams(prob: Problem, best, opts: Options, budget: int = STREAM_ITER * MAX_STREAMS, narrow=None):
     """Switch whole silent streams on and see whether they pay.
 
     Along a stream of two or more silent links the objective is flat to
@@ -248,7 +249,12 @@ def _wake_streams(prob: Problem, best, opts: Options, budget: int = STREAM_ITER 
     set to the informed start's values, near an SNR of one, and the quasi-
     Newton method gets ``STREAM_ITER`` iterations to bring the rest of the
     design along, within ``budget`` iterations in all. Returns the lowest
-    point that beats ``best`` (or ``None``) and the iterations used."""
+    point that beats ``best`` (or ``None``) and the iterations used.
+
+    ``narrow(ids)``, if given, names the problem of a sub-circuit of
+    ``prob`` that holds the stream ``ids`` (the active-set design passes the
+    active links plus the stream): the excursion runs there, on the links
+    that can carry power, and a winner is embedded back."""
     powers = _link_powers(prob, best.x)
     streams, dead = _streams(prob, powers)
     prob.stream_cover = {lid: None for lid in dead}
@@ -257,42 +263,50 @@ def _wake_streams(prob: Problem, best, opts: Options, budget: int = STREAM_ITER 
         return None, used
     if getattr(prob, "_informed_theta", None) is None:
         prob._informed_theta = prob.pack(prob.informed_start())
-    ref = prob._informed_theta
     silent = set(_silent_ids(prob, powers))
     informed, _ = _flow(prob, silent)
-    winner = None
+    winner, winner_x = None, None
+    subs = {}  # a stream's sub-circuit problem, built once for all its scales
     trials = [(ids, scale) for ids in streams[:MAX_STREAMS] for scale in STREAM_SCALES]
     for ids, scale in trials:
         if budget - used < 1:
             break
-        theta = best.x.copy()
+        if narrow is not None and tuple(ids) not in subs:
+            subs[tuple(ids)] = narrow(ids)
+        p = prob if narrow is None else subs[tuple(ids)]
+        theta = best.x.copy() if p is prob else p.pack(prob.unpack(best.x))
+        ref = prob._informed_theta if p is prob else p.pack(prob.unpack(prob._informed_theta))
         links = [prob.spec.link(lid) for lid in ids]
         for link in links:
-            for sl in prob.slices(link.id) + _receivers(prob, link):
+            for sl in p.slices(link.id) + _receivers(p, link):
                 theta[sl] = ref[sl]
-            for sl in prob.sender_slices(link.id):
+            for sl in p.sender_slices(link.id):
                 theta[sl] *= scale
         for node in {l.source for l in links} | {l.target for l in links}:
             if node not in informed:
-                for sl in prob.slices(node, "M"):
+                for sl in p.slices(node, "M"):
                     theta[sl] = ref[sl]
         for _ in range(12):  # the woken receivers must leave the loop stable
-            if np.isfinite(prob.value(theta)):
+            if np.isfinite(p.value(theta)):
                 break
             for link in links:
-                for sl in prob.receiver_slices(link.id):
+                for sl in p.receiver_slices(link.id):
                     theta[sl] *= 0.5
         else:
             continue
-        out = minimise(prob.value_and_grad, theta, max_iter=min(STREAM_ITER, budget - used), gtol=opts.gtol,
-                       ftol=opts.ftol, unit=prob.units(theta), value=prob.value)
+        solves = p.solves
+        out = minimise(p.value_and_grad, theta, max_iter=min(STREAM_ITER, budget - used), gtol=opts.gtol,
+                       ftol=opts.ftol, unit=p.units(theta), value=p.value)
         used += out.iterations
+        if p is not prob:
+            prob.solves += p.solves - solves
         for lid in ids:
             prob.stream_cover.setdefault(lid, ids)
         bar = best.f if winner is None else winner.f
         if np.isfinite(out.f) and out.f < bar - 1e-9 * max(abs(bar), F_FLOOR):
             winner = out
-    return (None if winner is None else winner.x), used
+            winner_x = out.x if p is prob else prob.pack(embed(p.unpack(out.x), p.spec, prob.spec))
+    return winner_x, used
 
 
 def _tested_links(prob: Problem, best) -> dict:

@@ -529,7 +529,6 @@ class Structure:
                            if ll.pair is not None and layout.links[ll.pair].copies is None]
         self.p_blocks = {ll.index: (int(e0), (ll.dim, layout.links[ll.pair].dim))
                          for ll, e0 in zip(undelayed_pairs, starts)}
-        self.Pm = SparseProduct(self.P.rows, self.P.cols, (self.m, self.m))
         self.PmT = SparseProduct(self.P.cols, self.P.rows, (self.m, self.m))
         self.Km = SparseProduct(self.K.rows, self.K.cols, (self.nz, self.m))
         self.KmT = SparseProduct(self.K.cols, self.K.rows, (self.m, self.nz))

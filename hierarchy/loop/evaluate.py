@@ -260,6 +260,13 @@ def _solve(layout: Layout, g: np.ndarray, margin: float = 0.0):
     if not (np.all(np.isfinite(Sigma)) and np.all(np.isfinite(row_power))):
         # Stable on paper, but the covariances overflow: no usable regime.
         return float("inf"), None
+    var = np.diag(Sigma)
+    if var.min(initial=0.0) < -PSD_RTOL * var.max(initial=0.0) or \
+            row_power.min(initial=0.0) < -PSD_RTOL * np.abs(row_power).max(initial=0.0):
+        # A negative variance: the solve lost its accuracy (a loop so badly
+        # conditioned that rounding swamps it), and a search would dive into
+        # the nonsense it returns (objectives of -1e15 were seen).
+        return float("inf"), None
     return radius, _Solution(p, sch, Sigma, hs, row_power)
 
 
