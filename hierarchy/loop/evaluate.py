@@ -223,8 +223,9 @@ class _Solution:
 
 def _solve(layout: Layout, g: np.ndarray, margin: float = 0.0):
     """Stationary regime of the flat gains ``g``: ``(radius, _Solution)``,
-    with ``None`` for the solution when the loop is unstable (or the area
-    block's radius is not below ``1 - margin``).
+    with ``None`` for the solution when the loop is unstable (or, in a
+    search, ``margin > 0``, when the area block's radius is not below
+    ``1 - margin`` or a variance comes out negative).
 
     The world block does not depend on the gains, so only the area part is
     solved: a Stein equation for ``Sigma_zx`` and a Lyapunov equation for
@@ -261,11 +262,12 @@ def _solve(layout: Layout, g: np.ndarray, margin: float = 0.0):
         # Stable on paper, but the covariances overflow: no usable regime.
         return float("inf"), None
     var = np.diag(Sigma)
-    if var.min(initial=0.0) < -PSD_RTOL * var.max(initial=0.0) or \
-            row_power.min(initial=0.0) < -PSD_RTOL * np.abs(row_power).max(initial=0.0):
-        # A negative variance: the solve lost its accuracy (a loop so badly
-        # conditioned that rounding swamps it), and a search would dive into
-        # the nonsense it returns (objectives of -1e15 were seen).
+    if margin > 0 and (var.min(initial=0.0) < -PSD_RTOL * var.max(initial=0.0) or
+                       row_power.min(initial=0.0) < -PSD_RTOL * np.abs(row_power).max(initial=0.0)):
+        # In a search only (scores of given gains go on to check_scores,
+        # which names the fault): a negative variance means the solve lost
+        # its accuracy, and a search would dive into the nonsense it returns
+        # (objectives of -1e15 were seen).
         return float("inf"), None
     return radius, _Solution(p, sch, Sigma, hs, row_power)
 
