@@ -72,6 +72,13 @@ class LinkLayout:
         return slice(self.copies.stop - self.dim, self.copies.stop)
 
 
+def _sums(idx, weights, minlength):
+    """``np.bincount`` with weights, always float: with no entries at all
+    (a circuit without links) bincount returns integers, and adding floats
+    into them fails."""
+    return np.bincount(idx, weights=weights, minlength=minlength).astype(float, copy=False)
+
+
 class Layout:
     """Index bookkeeping for one spec: where every state and noise sits in q.
 
@@ -654,7 +661,7 @@ class Structure:
         Gv[self.Gv.rows, self.Gv.cols] = g[self.Gv.at]
         dst, gi, cv = self.b_gv
         nb = len(self.b_rows)
-        b = np.bincount(dst, weights=g[self.Gv.at][gi] * cv, minlength=nb)
+        b = _sums(dst, weights=g[self.Gv.at][gi] * cv, minlength=nb)
         b[self.b_gz] += g[self.Gz.at]
         if self.delays:
             b[self.b_pd] -= g[self.Pd.at]
@@ -662,19 +669,19 @@ class Structure:
         h = np.zeros(len(self.h_rows))
         h[self.h_b] = b
         dst, pe, bf = self.h_p
-        h -= np.bincount(dst, weights=p[pe] * b[bf], minlength=len(h))
+        h -= _sums(dst, weights=p[pe] * b[bf], minlength=len(h))
         ke, kh, dst = self.km_h
-        Phi_z = np.bincount(dst, weights=k[ke] * h[kh], minlength=self.nz * nxi).reshape(self.nz, nxi)
+        Phi_z = _sums(dst, weights=k[ke] * h[kh], minlength=self.nz * nxi).reshape(self.nz, nxi)
         Phi_z[self.M.rows, nx + self.M.cols] += g[self.M.at]
         if self.delays:
             Phi_z[self.Kd.rows, nx + self.Kd.cols] += g[self.Kd.at]
             Phi_z[self.shift[0], nx + self.shift[1]] += 1.0
         pk_e, pk_f = self.p_k
         nq = len(self.q_rows)
-        q2 = np.bincount(self.q_k, weights=k, minlength=nq)
-        q2 -= np.bincount(self.q_p, weights=k[pk_f] * p[pk_e], minlength=nq)
+        q2 = _sums(self.q_k, weights=k, minlength=nq)
+        q2 -= _sums(self.q_p, weights=k[pk_f] * p[pk_e], minlength=nq)
         dst, qa, ob = self.q_omega
-        q2_omega = np.bincount(dst, weights=q2[qa] * self.omega_eta[ob], minlength=len(self.o_rows))
+        q2_omega = _sums(dst, weights=q2[qa] * self.omega_eta[ob], minlength=len(self.o_rows))
         dst, src, val = self.p_omega
-        P_omega = np.bincount(dst, weights=p[src] * val, minlength=len(p))
+        P_omega = _sums(dst, weights=p[src] * val, minlength=len(p))
         return Parts(b, h, Phi_z, Gv, p, k, self.Km.matmul(k, Gv), q2, q2_omega, P_omega)

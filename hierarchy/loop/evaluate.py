@@ -13,7 +13,7 @@ from dataclasses import dataclass, field
 import numpy as np
 import scipy.linalg as sla
 
-from hierarchy.loop.closedloop import ClosedLoop, Layout
+from hierarchy.loop.closedloop import ClosedLoop, Layout, _sums
 from hierarchy.errors import UnstableError
 from hierarchy.loop.gains import Gains, check_gains, with_pins
 from hierarchy.spec.model import Spec
@@ -246,7 +246,7 @@ def _solve(layout: Layout, g: np.ndarray, margin: float = 0.0):
     cross = Pzz @ Szx @ Pzx.T
     vo, vq, dst = st.v2
     V = p.Q1 @ st.Omega_v @ p.Q1.T
-    V += np.bincount(dst, weights=p.q2_omega[vo] * p.q2[vq], minlength=st.nz * st.nz).reshape(st.nz, st.nz)
+    V += _sums(dst, weights=p.q2_omega[vo] * p.q2[vq], minlength=st.nz * st.nz).reshape(st.nz, st.nz)
     Szz = _stein(sch, False, sch, False, PS @ Pzx.T + cross + cross.T + V)
     Sigma = np.empty((st.nxi, st.nxi))
     Sigma[:nx, :nx] = world.Sigma
@@ -254,10 +254,10 @@ def _solve(layout: Layout, g: np.ndarray, margin: float = 0.0):
     Sigma[:nx, nx:] = Szx.T
     Sigma[nx:, nx:] = 0.5 * (Szz + Szz.T)
     f1, f2, key = st.hh
-    hs = np.bincount(f2, weights=p.h[f1] * Sigma.ravel()[key], minlength=len(p.h))
-    row_power = np.bincount(st.h_rows, weights=p.h * hs, minlength=st.m)
+    hs = _sums(f2, weights=p.h[f1] * Sigma.ravel()[key], minlength=len(p.h))
+    row_power = _sums(st.h_rows, weights=p.h * hs, minlength=st.m)
     row_power += np.einsum("ij,ij->i", p.Gv @ st.Omega_v, p.Gv)
-    row_power += np.bincount(st.P.rows, weights=p.P_omega * p.p, minlength=st.m)
+    row_power += _sums(st.P.rows, weights=p.P_omega * p.p, minlength=st.m)
     if not (np.all(np.isfinite(Sigma)) and np.all(np.isfinite(row_power))):
         # Stable on paper, but the covariances overflow: no usable regime.
         return float("inf"), None
@@ -640,7 +640,7 @@ def _gradient(layout: Layout, g: np.ndarray, sol: _Solution, lam: np.ndarray) ->
     # Adjoint on the area rows. W's area rows: errors and activity (fixed)
     # plus the priced link rows H' diag(price) H.
     f1, f2, dst = st.hh_z
-    Wz = st.Wz_fixed + np.bincount(dst, weights=lam[st.h_rows[f1]] * h[f1] * h[f2],
+    Wz = st.Wz_fixed + _sums(dst, weights=lam[st.h_rows[f1]] * h[f1] * h[f2],
                                    minlength=nz * st.nxi).reshape(nz, st.nxi)
     Pzx, Pzz = p.Phi_z[:, :nx], p.Phi_z[:, nx:]
     Azz = _stein(sol.schur, True, sol.schur, True, Wz[:, nx:])
@@ -653,7 +653,7 @@ def _gradient(layout: Layout, g: np.ndarray, sol: _Solution, lam: np.ndarray) ->
     Yx = 2.0 * AP @ Sigma
     Yv = 2.0 * Azz @ (p.Q1 @ st.Omega_v)
     vo, vq, dst = st.v2
-    ye = 2.0 * np.bincount(vq, weights=Azz.ravel()[dst] * p.q2_omega[vo], minlength=len(p.q2))
+    ye = 2.0 * _sums(vq, weights=Azz.ravel()[dst] * p.q2_omega[vo], minlength=len(p.q2))
     Yxf = Yx.ravel()
 
     # With delayed links, one more slot takes (and drops) the derivatives of their fixed entries.
@@ -666,24 +666,24 @@ def _gradient(layout: Layout, g: np.ndarray, sol: _Solution, lam: np.ndarray) ->
     pk_e, pk_f = st.p_k
     if len(K.at):
         # The -Pm part of what arrives, over link noises: (Pm Ye')' at K's entries.
-        dg[K.at] = (np.bincount(ke, weights=Yxf[kdst] * h[kh], minlength=len(K.at))
+        dg[K.at] = (_sums(ke, weights=Yxf[kdst] * h[kh], minlength=len(K.at))
                     + _row_dots(Yv, K.rows, p.Gv, K.cols) + ye[st.q_k]
-                    - np.bincount(pk_f, weights=p.p[pk_e] * ye[st.q_p], minlength=len(K.at)))
+                    - _sums(pk_f, weights=p.p[pk_e] * ye[st.q_p], minlength=len(K.at)))
     # The gradient on what is sent, g_R = Km' Y + 2 diag(price) H Sigma, at H's entries.
-    gr = np.bincount(kh, weights=p.k[ke] * Yxf[kdst], minlength=len(h)) + 2.0 * lam[st.h_rows] * sol.hs
+    gr = _sums(kh, weights=p.k[ke] * Yxf[kdst], minlength=len(h)) + 2.0 * lam[st.h_rows] * sol.hs
     gRv = st.KmT.matmul(p.k, Yv) + 2.0 * lam[:, None] * (p.Gv @ st.Omega_v)
     hdst, pe, bf = st.h_p
     if len(P.at):
-        KYe = np.bincount(pk_e, weights=p.k[pk_f] * ye[st.q_p], minlength=len(P.at))
-        dg[P.at] = -(np.bincount(pe, weights=gr[hdst] * p.b[bf], minlength=len(P.at)) + KYe
+        KYe = _sums(pk_e, weights=p.k[pk_f] * ye[st.q_p], minlength=len(P.at))
+        dg[P.at] = -(_sums(pe, weights=gr[hdst] * p.b[bf], minlength=len(P.at)) + KYe
                      - 2.0 * lam[P.rows] * p.P_omega)
     # g_B = (I - Pm)' g_R at B's entries.
-    gb = gr[st.h_b] - np.bincount(bf, weights=p.p[pe] * gr[hdst], minlength=len(st.b_rows))
+    gb = gr[st.h_b] - _sums(bf, weights=p.p[pe] * gr[hdst], minlength=len(st.b_rows))
     gBv = gRv - st.PmT.matmul(p.p, gRv)
     dg[st.Gz.at] = gb[st.b_gz]
     if st.delays:
         dg[st.Pd.at] = -gb[st.b_pd]
     Gv = st.Gv
     bdst, gi, cv = st.b_gv
-    dg[Gv.at] = np.bincount(gi, weights=gb[bdst] * cv, minlength=len(Gv.at)) + gBv[Gv.rows, Gv.cols]
+    dg[Gv.at] = _sums(gi, weights=gb[bdst] * cv, minlength=len(Gv.at)) + gBv[Gv.rows, Gv.cols]
     return dg[:len(g)]
