@@ -359,10 +359,13 @@ def _finish(prob: Problem, theta, best, iterations, nstarts, seconds, form, shad
 
 
 def raise_unstable_pins(prob: Problem):
-    """If the pinned gains alone make the loop unstable, say which."""
+    """If the pinned gains alone leave no usable loop, say why: scoring them
+    names an unstable or too badly conditioned loop; what is left is a loop
+    within ``SEARCH_MARGIN`` of the edge."""
     from hierarchy.errors import UnstableError
 
     if prob.size == 0:
+        score(prob.layout, prob.pins)
         radius = loop_radius(assemble(prob.layout, prob.pins))
         raise UnstableError(f"the pinned gains make the closed loop unstable (spectral radius {radius:.4g})",
                             place="pin", fix="change the pinned matrices (for example a smaller M or K)")
