@@ -1,37 +1,34 @@
-"""Scale: the exact evaluation and the designer on synthetic layered circuits.
+"""Scale: the acceptance table of issue 12 on generated layered circuits.
 
-Circuits come from ``hierarchy.spec.generate`` (``areas`` areas on ``areas / 2``
-levels, area dimension 2, world dimension ``areas``, density 0.175, seed 0:
-302 links at 32 areas). Every measurement runs in a fresh child process, so
-that its peak memory (``ru_maxrss``) is its own and its BLAS thread setting
-can differ; each child also times one ``scipy.linalg.solve_discrete_lyapunov``
-of its closed loop's size (a random stable matrix, median of several) and
-every time is printed beside its ratio to that baseline.
+Circuits come from ``hierarchy.spec.generate`` (``A`` areas on ``A / 2`` levels,
+area dimension 2, world dimension ``A``, seed 0) at two densities: the
+generator's default 0.2 (about 326 links at 32 areas, 2,047 at 91) and the
+density that gives about 10 links per area. Each is designed in three
+forms:
 
-Children run with single-threaded BLAS unless ``--threads`` says otherwise:
-the matrices here are small (at most a few hundred rows), and on a busy
-2-core machine OpenBLAS's worker threads cost far more than they give (the
-thread comparison at the end shows how much).
+* ``price``: the spec's link prices (``design_prices``);
+* ``budget-1``: the links sent by areas unpriced under one total budget;
+* ``budget-3``: the same links under three overlapping budgets (lower
+  two thirds of the sending levels, upper two thirds, all of them).
 
-It prints
+Every run is a fresh child process with one BLAS thread, so that its peak
+memory (``ru_maxrss``) is its own. The same circuit is also designed by the
+baseline commit (``--baseline``, default 1dc04ee, checked out with ``git
+archive`` into a temporary folder) in its own child, and the objectives are
+compared (``rel`` = (ours - baseline) / |baseline|, negative is better).
+Each child times one exact value-and-gradient at the informed start and one
+bare ``scipy.linalg.solve_discrete_lyapunov`` of the closed loop's size (a
+random stable matrix), medians of several, and prints their ratio.
 
-* the targets of issue 5 at 32 areas / 302 links: price-form design <= 60 s,
-  budget-form design (one budget per level instead of prices) <= 120 s, peak
-  memory < 2 GiB;
-* a scaling table for 2, 4, 8, 16, 32, 64 areas (price form): time per exact
-  evaluation (``score``), per value-and-gradient, per designer iteration,
-  iterations, total time, peak memory;
-* at 8 areas, the designer's objective against the objective with 4x its
-  iteration and restart budgets (goal: within 0.5%);
-* at 32 areas with ``OPENBLAS_NUM_THREADS`` 1 and 2: evaluation times and a
-  price-form design cut at 300 iterations (time per iteration).
+    python benchmarks/scale.py --quick                 # 8 and 16 areas, price form, default density
+    python benchmarks/scale.py --sizes 8,16,32         # price form, both densities
+    python benchmarks/scale.py --sizes 32 --forms price,budget-1,budget-3
+    python benchmarks/scale.py --sizes 64,91 --no-baseline   # the baseline takes many minutes there
+    python benchmarks/scale.py --evaluate-only              # evaluation times only, both commits
 
-    python benchmarks/scale.py            # everything (about 15 minutes)
-    python benchmarks/scale.py --threads inherit   # children keep this shell's BLAS setting
-    python benchmarks/scale.py --quick    # table to 16 areas, no 4x check, no thread comparison
-    python benchmarks/scale.py --profile  # also cProfile one value-and-gradient at 32 areas
-
-Wall times depend on what else the machine runs; CPU times are printed too.
+Baseline results are kept in ``--cache`` (a JSON file in the temporary
+folder by default), so a second run does not redesign them. Wall times
+depend on what else the machine runs; CPU times are printed too.
 """
 
 from __future__ import annotations
@@ -39,225 +36,279 @@ from __future__ import annotations
 import argparse
 import json
 import os
-import platform
-import resource
-import statistics
 import subprocess
 import sys
+import tempfile
 import time
 
-# Measure the checkout this script lives in, not whatever copy is installed.
-ROOT = os.path.dirname(os.path.dirname(os.path.abspath(__file__)))
-sys.path.insert(0, ROOT)
+HERE = os.path.dirname(os.path.dirname(os.path.abspath(__file__)))
+sys.path.insert(0, HERE)
 
-TARGET_AREAS = 32
-TARGET_PRICE_S, TARGET_BUDGET_S, TARGET_MEMORY_MIB = 60.0, 120.0, 2048.0
-TABLE_AREAS = (2, 4, 8, 16, 32, 64)
-CHECK_AREAS, CHECK_RTOL = 8, 0.005
-DENSITY, SEED = 0.175, 0
-
-
-def spec_text(areas: int, budgets: bool = False) -> str:
-    from hierarchy.spec.generate import generate_spec_text
-
-    return generate_spec_text(areas=areas, levels=max(areas // 2, 1), density=DENSITY, seed=SEED,
-                              area_dim=2, budgets=budgets)
+SIZES = (8, 16, 32, 64, 91)
+FORMS = ("price", "budget-1", "budget-3")
+DEFAULT_DENSITY, LINKS_PER_AREA, SEED = 0.2, 10, 0
+#: Acceptance of issue 12 (seconds): 32 areas / about 300 links, 91 areas / about 2,000 links.
+LIMITS = {(32, "price"): 15, (32, "budget"): 30, (91, "price"): 300, (91, "budget"): 600}
+MEMORY_MIB = 2048
 
 
-def blas_lines() -> list:
-    """Which BLAS this process runs, with how many threads."""
-    lines = [f"OPENBLAS_NUM_THREADS={os.environ.get('OPENBLAS_NUM_THREADS', '(unset)')}  "
-             f"OMP_NUM_THREADS={os.environ.get('OMP_NUM_THREADS', '(unset)')}  cpus={os.cpu_count()}"]
+def _part(new: str, old: str):
+    """A module of the package by its name in rooms (``hierarchy.spec.generate``)
+    or, in a baseline from before the layout move, by its flat name."""
+    import importlib
+
     try:
-        import numpy  # noqa: F401  (loads the BLAS that threadpoolctl reports)
-        from threadpoolctl import threadpool_info
+        return importlib.import_module(new)
     except ImportError:
-        return lines + ["threadpoolctl not installed: BLAS threads not reported"]
-    for info in threadpool_info():
-        lines.append(f"{info.get('user_api')}: {info.get('internal_api')} {info.get('version')}, "
-                     f"{info.get('num_threads')} thread(s)")
-    return lines
+        return importlib.import_module(old)
+
+
+def generate_spec_text(**kw):
+    return _part("hierarchy.spec.generate", "hierarchy.generate").generate_spec_text(**kw)
+
+
+def circuit_text(areas: int, density: float, form: str) -> str:
+    """YAML of one benchmark circuit in one form."""
+
+    text = generate_spec_text(areas=areas, levels=max(areas // 2, 1), density=density, seed=SEED,
+                              area_dim=2, budgets=form != "price")
+    if form == "price":
+        return text
+    head, _, tail = text.partition("\nbudgets:\n")
+    groups = []  # (level, [ids], total) as the generator wrote them
+    for line in tail.splitlines():
+        inner = line.strip()[3:-1]
+        name = inner.split("name: ")[1].split(",")[0]
+        ids = inner.split("links: [")[1].split("]")[0].split(", ")
+        total = float(inner.split("total: ")[1])
+        groups.append((int(name.split("-")[1]), ids, total))
+    groups.sort()
+    if form == "budget-1":
+        budgets = [("total", [i for _, ids, _ in groups for i in ids], sum(t for *_, t in groups))]
+    else:
+        k = max(1, round(2 * len(groups) / 3))
+        low, high = groups[:k], groups[-k:]
+        budgets = [("lower", [i for _, ids, _ in low for i in ids], sum(t for *_, t in low)),
+                   ("upper", [i for _, ids, _ in high for i in ids], sum(t for *_, t in high)),
+                   ("total", [i for _, ids, _ in groups for i in ids], 0.9 * sum(t for *_, t in groups))]
+    lines = [f"  - {{name: {name}, links: [{', '.join(ids)}], total: {total:.6g}}}" for name, ids, total in budgets]
+    return head + "\nbudgets:\n" + "\n".join(lines) + "\n"
+
+
+def density_for(areas: int) -> float:
+    """The density that gives the generated circuit about LINKS_PER_AREA links per area."""
+    from hierarchy.spec import parse_spec
+
+    def links(d):
+        return len(parse_spec(generate_spec_text(areas=areas, levels=max(areas // 2, 1), density=d,
+                                                 seed=SEED, area_dim=2)).links)
+
+    lo, hi = 0.0, 1.0
+    for _ in range(14):
+        mid = 0.5 * (lo + hi)
+        lo, hi = (mid, hi) if links(mid) < LINKS_PER_AREA * areas else (lo, mid)
+    return round(hi, 4)
+
+
+# -- one run (child process) ---------------------------------------------------------
 
 
 def median_time(fn, runs: int = 5, seconds: float = 1.0) -> float:
+    import statistics
+
     fn()
     times, start = [], time.perf_counter()
-    while len(times) < runs or (time.perf_counter() - start < seconds and len(times) < 200):
+    while len(times) < runs or (time.perf_counter() - start < seconds and len(times) < 100):
         t0 = time.perf_counter()
         fn()
         times.append(time.perf_counter() - t0)
     return statistics.median(times)
 
 
-# -- one measurement (child process) ------------------------------------------------
-
-
 def child(job: dict) -> dict:
+    import resource
+
+    sys.path.insert(0, job["root"])
     import numpy as np
     import scipy.linalg as sla
 
+    import hierarchy
     from hierarchy.design import Options, design_budgets, design_prices
-    from hierarchy.loop.evaluate import score
-    from hierarchy.design.problem import Problem
     from hierarchy.spec import parse_spec
 
-    spec = parse_spec(spec_text(job["areas"], job.get("budgets", False)))
+    Problem = _part("hierarchy.design.problem", "hierarchy.problem").Problem
+
+    assert os.path.dirname(os.path.dirname(os.path.abspath(hierarchy.__file__))) == job["root"]
+    spec = parse_spec(circuit_text(job["areas"], job["density"], job["form"]))
     prob = Problem(spec)
     nxi = prob.layout.nxi
     rng = np.random.default_rng(0)
     A = rng.standard_normal((nxi, nxi))
     A *= 0.9 / np.max(np.abs(np.linalg.eigvals(A)))
-    Q = np.eye(nxi)
-    out = {"areas": job["areas"], "links": len(spec.links), "nxi": nxi, "free": prob.size,
-           "blas": blas_lines(), "floor": median_time(lambda: sla.solve_discrete_lyapunov(A, Q))}
-    if job.get("evaluate", True):
-        x = prob.pack(prob.informed_start())
-        gains = prob.unpack(x)
-        out["score"] = median_time(lambda: score(prob.layout, gains))
-        out["value_grad"] = median_time(lambda: prob.value_and_grad(x))
-    scale = job.get("budget_scale", 1)
-    opts = Options(restarts=4 * scale, max_iter=job.get("max_iter", 3000) * scale, probe_iter=60 * scale)
-    run = design_budgets if job.get("budgets", False) else design_prices
+    out = {"links": len(spec.links), "nxi": nxi, "free": prob.size,
+           "lyap": median_time(lambda: sla.solve_discrete_lyapunov(A, np.eye(nxi)))}
+    x = prob.pack(prob.informed_start())
+
+    def value_grad():
+        prob._last = None  # (a Problem that keeps its last solve would only redo the adjoint)
+        prob.value_and_grad(x)
+
+    out["value_grad"] = median_time(value_grad)
+    if not job.get("design", True):
+        return out
+    run = design_prices if job["form"] == "price" else design_budgets
     c0, t0 = time.process_time(), time.perf_counter()
-    res = run(spec, opts)
+    res = run(spec, Options())
     out.update(seconds=time.perf_counter() - t0, cpu=time.process_time() - c0, iterations=res.iterations,
                evaluations=res.evaluations, status=res.status, message=res.message, objective=res.objective,
-               silent=len(res.silent), peak_mib=resource.getrusage(resource.RUSAGE_SELF).ru_maxrss / 1024.0)
-    if res.budgets:
-        out["budgets_met"] = all(b.met for b in res.budgets.values())
+               silent=len(res.silent), peak_mib=resource.getrusage(resource.RUSAGE_SELF).ru_maxrss / 1024.0,
+               budgets_met=all(b.met for b in res.budgets.values()))
     return out
 
 
-#: BLAS threads of the children ("inherit": this process's environment).
-THREADS = {"value": "1"}
-
-
-def measure(job: dict, threads: str | None = None) -> dict:
-    """Run ``child(job)`` in a fresh interpreter with ``threads`` BLAS threads
-    (default: the ``--threads`` option)."""
-    env = dict(os.environ)
-    threads = THREADS["value"] if threads is None else threads
-    if threads != "inherit":
-        env["OPENBLAS_NUM_THREADS"] = env["OMP_NUM_THREADS"] = threads
+def measure(job: dict) -> dict:
+    env = dict(os.environ, OPENBLAS_NUM_THREADS="1", OMP_NUM_THREADS="1", MKL_NUM_THREADS="1")
+    env.pop("PYTHONPATH", None)
     done = subprocess.run([sys.executable, os.path.abspath(__file__), "--child", json.dumps(job)],
                           env=env, capture_output=True, text=True)
     if done.returncode != 0:
-        raise RuntimeError(f"child {job} failed:\n{done.stderr}")
+        return {"error": done.stderr.strip().splitlines()[-1] if done.stderr.strip() else "no output"}
     return json.loads(done.stdout.strip().splitlines()[-1])
 
 
-# -- report ------------------------------------------------------------------------------
+# -- the table ---------------------------------------------------------------------------
 
 
-def verdict(ok: bool) -> str:
-    return "MET" if ok else "NOT MET"
+def baseline_root(commit: str) -> str:
+    """A checkout of ``commit`` (``git archive``) in a temporary folder, kept between runs."""
+    root = os.path.join(tempfile.gettempdir(), f"hierarchy-baseline-{commit}")
+    if not os.path.isdir(os.path.join(root, "hierarchy")):
+        os.makedirs(root, exist_ok=True)
+        archive = subprocess.run(["git", "-C", HERE, "archive", commit], capture_output=True, check=True).stdout
+        subprocess.run(["tar", "-x", "-C", root], input=archive, check=True)
+    return root
 
 
-def profile_lines(areas: int) -> list:
-    import cProfile
-    import io
-    import pstats
+def limit_of(areas: int, form: str):
+    return LIMITS.get((areas, "price" if form == "price" else "budget"))
 
-    from hierarchy.design.problem import Problem
-    from hierarchy.spec import parse_spec
 
-    prob = Problem(parse_spec(spec_text(areas)))
-    x = prob.pack(prob.informed_start())
-    prob.value_and_grad(x)
-    pr = cProfile.Profile()
-    pr.enable()
-    for _ in range(20):
-        prob.value_and_grad(x)
-    pr.disable()
-    text = io.StringIO()
-    pstats.Stats(pr, stream=text).sort_stats("tottime").print_stats(8)
-    return [f"cProfile of 20 value-and-gradient calls at {areas} areas (top 8 by own time):"] + \
-        [line for line in text.getvalue().splitlines() if line.strip()][-9:]
+def evaluate_only(sizes, kinds, base_root) -> int:
+    """The evaluation columns alone: one value-and-gradient of this commit
+    and of the baseline on each circuit (price form), beside one bare
+    Lyapunov solve."""
+    header = (f"{'areas':>5} {'links':>5} {'states':>6} {'gains':>6} {'v+g ms':>8} {'base v+g':>8} {'speed-up':>8} "
+              f"{'lyap ms':>8} {'x':>5} {'base x':>6}")
+    print()
+    print(header)
+    print("-" * len(header))
+    for areas in sizes:
+        for kind in kinds:
+            density = DEFAULT_DENSITY if kind == "default" else density_for(areas)
+            job = {"areas": areas, "density": density, "form": "price", "design": False}
+            r = measure(dict(job, root=HERE))
+            b = measure(dict(job, root=base_root)) if base_root else {"value_grad": float("nan")}
+            print(f"{areas:>5} {r['links']:>5} {r['nxi']:>6} {r['free']:>6} {1e3 * r['value_grad']:>8.2f} "
+                  f"{1e3 * b['value_grad']:>8.2f} {b['value_grad'] / r['value_grad']:>8.2f} {1e3 * r['lyap']:>8.2f} "
+                  f"{r['value_grad'] / r['lyap']:>5.2f} {b['value_grad'] / r['lyap']:>6.2f}", flush=True)
+    print("v+g = one exact value and gradient at the informed start (medians, each commit in its own child);")
+    print("speed-up = base / ours; lyap = one bare solve_discrete_lyapunov of the closed loop's size; x = v+g / lyap")
+    return 0
 
 
 def main(argv=None) -> int:
     ap = argparse.ArgumentParser(description=__doc__.splitlines()[0])
-    ap.add_argument("--quick", action="store_true", help="table to 16 areas; skip the 4x check and thread runs")
-    ap.add_argument("--profile", action="store_true", help="also profile one value-and-gradient at 32 areas")
-    ap.add_argument("--threads", default="1",
-                    help="BLAS threads of the measuring children (default 1; 'inherit' keeps the environment's)")
+    ap.add_argument("--quick", action="store_true", help="8 and 16 areas, price form, default density")
+    ap.add_argument("--sizes", help="comma-separated area counts (default 8,16,32,64,91)")
+    ap.add_argument("--forms", help=f"comma-separated forms among {', '.join(FORMS)} (default all; --quick: price)")
+    ap.add_argument("--densities", default="default,10",
+                    help="'default' (0.2) and/or '10' (about 10 links per area); default both (--quick: default)")
+    ap.add_argument("--baseline", default="1dc04ee", help="commit whose objectives and times are compared")
+    ap.add_argument("--no-baseline", action="store_true", help="do not run the baseline")
+    ap.add_argument("--cache", default=os.path.join(tempfile.gettempdir(), "hierarchy-scale-baseline.json"),
+                    help="JSON file keeping the baseline's results between runs")
+    ap.add_argument("--evaluate-only", action="store_true",
+                    help="only time one value-and-gradient, this commit against the baseline (no designs)")
     ap.add_argument("--child", help=argparse.SUPPRESS)
     args = ap.parse_args(argv)
     if args.child:
         print(json.dumps(child(json.loads(args.child))))
         return 0
-    THREADS["value"] = args.threads
 
-    import numpy as np
-    import scipy
+    from _env import blas_header, code_version
 
+    sizes = [int(s) for s in args.sizes.split(",")] if args.sizes else ([8, 16] if args.quick else list(SIZES))
+    forms = args.forms.split(",") if args.forms else (["price"] if args.quick else list(FORMS))
+    kinds = ["default"] if args.quick and args.densities == "default,10" else args.densities.split(",")
+    bad = [f for f in forms if f not in FORMS] + [k for k in kinds if k not in ("default", "10")]
+    if bad:
+        print(f"scale.py: unknown form or density {', '.join(bad)}; forms: {', '.join(FORMS)}; "
+              "densities: default, 10", file=sys.stderr)
+        return 2
     t_start = time.perf_counter()
-    print("scale: exact evaluation and designer on generated layered circuits")
-    print("  this process: " + "; ".join(blas_lines()))
-    first = measure({"areas": 2, "evaluate": False})
-    print(f"  measuring children (--threads {args.threads}): " + "; ".join(first["blas"]))
-    print(f"  python {platform.python_version()}, numpy {np.__version__}, scipy {scipy.__version__}; "
-          f"load average at start {os.getloadavg()[0]:.1f}")
-    print(f"  circuits: hierarchy.spec.generate, areas A on A/2 levels, area dim 2, world dim A, "
-          f"density {DENSITY}, seed {SEED}; each run in a fresh process")
+    print("scale: issue 12 acceptance table (hierarchy.spec.generate circuits, fresh process per run, one BLAS thread)")
+    print(f"  measured: {code_version()}; baseline: "
+          f"{'(not run)' if args.no_baseline else args.baseline}; this process: " + "; ".join(blas_header()))
+    print(f"  load average at start {os.getloadavg()[0]:.1f}")
+    if args.evaluate_only:
+        return evaluate_only(sizes, kinds, None if args.no_baseline else baseline_root(args.baseline))
+    cache = {}
+    if not args.no_baseline and os.path.exists(args.cache):
+        with open(args.cache) as fh:
+            cache = json.load(fh)
+    base_root = None if args.no_baseline else baseline_root(args.baseline)
+    header = (f"{'areas':>5} {'links':>5} {'gains':>6} {'form':<9} {'status':<16} {'objective':>12} "
+              f"{'baseline':>12} {'rel':>9} {'time s':>7} {'cpu s':>7} {'base s':>7} {'base cpu':>8} {'MiB':>5} "
+              f"{'evals':>6} {'v+g ms':>7} {'base v+g':>8} {'lyap ms':>7} {'x':>5}  limit")
     print()
-
-    price = measure({"areas": TARGET_AREAS})
-    budget = measure({"areas": TARGET_AREAS, "budgets": True, "evaluate": False})
-    print(f"Targets at {TARGET_AREAS} areas, {price['links']} links, closed loop {price['nxi']} states, "
-          f"{price['free']} free gains:")
-    rows = [("price-form design", price, TARGET_PRICE_S), ("budget-form design", budget, TARGET_BUDGET_S)]
-    for name, r, limit in rows:
-        extra = "" if "budgets_met" not in r else f", budgets met: {'yes' if r['budgets_met'] else 'NO'}"
-        print(f"  {name:<19} {r['seconds']:7.1f} s wall ({r['cpu']:.1f} s CPU), {r['iterations']} iterations, "
-              f"status {r['status']}{extra}; target <= {limit:g} s: {verdict(r['seconds'] <= limit)}")
-        if r["message"]:
-            print(f"  {'':<19} solver: {r['message']}")
-    peak = max(price["peak_mib"], budget["peak_mib"])
-    print(f"  peak memory         {peak:7.0f} MiB (largest of the two runs, ru_maxrss); "
-          f"target < {TARGET_MEMORY_MIB:g} MiB: {verdict(peak < TARGET_MEMORY_MIB)}")
-    print()
-
-    areas = [a for a in TABLE_AREAS if not args.quick or a <= 16]
-    header = (f"{'areas':>5} {'links':>5} {'states':>6} {'gains':>6} {'lyap ms':>8} {'eval ms':>8} {'x':>5} "
-              f"{'v+g ms':>8} {'x':>5} {'iter ms':>8} {'x':>5} {'iters':>6} {'total s':>8} {'cpu s':>7} "
-              f"{'MiB':>6}  status")
-    print("Scaling (price form):")
     print(header)
     print("-" * len(header))
-    for a in areas:
-        r = price if a == TARGET_AREAS else measure({"areas": a})
-        f = r["floor"]
-        it = r["seconds"] / max(r["iterations"], 1)
-        print(f"{a:>5} {r['links']:>5} {r['nxi']:>6} {r['free']:>6} {1e3 * f:>8.2f} {1e3 * r['score']:>8.2f} "
-              f"{r['score'] / f:>5.1f} {1e3 * r['value_grad']:>8.2f} {r['value_grad'] / f:>5.1f} {1e3 * it:>8.2f} "
-              f"{it / f:>5.1f} {r['iterations']:>6} {r['seconds']:>8.1f} {r['cpu']:>7.1f} {r['peak_mib']:>6.0f}  "
-              f"{r['status']}", flush=True)
-    print("states = closed-loop states; lyap = one solve_discrete_lyapunov of that size (the baseline); eval =")
-    print("score(); v+g = objective and exact gradient; iter = design wall time / iterations; x = ratio to lyap")
+    misses = []
+    for areas in sizes:
+        for kind in kinds:
+            density = DEFAULT_DENSITY if kind == "default" else density_for(areas)
+            for form in forms:
+                job = {"areas": areas, "density": density, "form": form}
+                r = measure(dict(job, root=HERE))
+                key = f"{args.baseline}:{areas}:{density}:{form}"
+                b = None
+                if base_root is not None:
+                    b = cache.get(key) or measure(dict(job, root=base_root))
+                    if "error" not in b:
+                        cache[key] = b
+                        with open(args.cache, "w") as fh:
+                            json.dump(cache, fh)
+                if "error" in r:
+                    print(f"{areas:>5} {'':>5} {'':>6} {form:<9} error: {r['error']}", flush=True)
+                    misses.append(f"{areas} areas {form}: error")
+                    continue
+                have_b = b is not None and "error" not in b
+                rel = (r["objective"] - b["objective"]) / abs(b["objective"]) if have_b else float("nan")
+                limit = limit_of(areas, form) if kind == "default" or areas in (32, 91) else None
+                ok = (r["status"] == "converged" and r["peak_mib"] < MEMORY_MIB and r["budgets_met"]
+                      and (not have_b or rel <= 1e-6) and (limit is None or r["seconds"] <= limit))
+                if not ok:
+                    misses.append(f"{areas} areas, {r['links']} links, {form}")
+                lim = "" if limit is None else f"<= {limit} s: {'met' if r['seconds'] <= limit else 'NOT met'}"
+                print(f"{areas:>5} {r['links']:>5} {r['free']:>6} {form:<9} {r['status']:<16} "
+                      f"{r['objective']:>12.8g} {(b['objective'] if have_b else float('nan')):>12.8g} {rel:>+9.1e} "
+                      f"{r['seconds']:>7.1f} {r['cpu']:>7.1f} {(b['seconds'] if have_b else float('nan')):>7.1f} "
+                      f"{(b['cpu'] if have_b else float('nan')):>8.1f} "
+                      f"{r['peak_mib']:>5.0f} {r['evaluations']:>6} {1e3 * r['value_grad']:>7.2f} "
+                      f"{(1e3 * b['value_grad'] if have_b else float('nan')):>8.2f} "
+                      f"{1e3 * r['lyap']:>7.2f} {r['value_grad'] / r['lyap']:>5.1f}  {lim}", flush=True)
+                if have_b and b["status"] != "converged":
+                    print(f"{'':>27}baseline status: {b['status']} ({b['message']})")
+                if r["status"] != "converged":
+                    print(f"{'':>27}solver: {r['message']}")
     print()
-
-    if not args.quick:
-        base = measure({"areas": CHECK_AREAS, "evaluate": False})
-        more = measure({"areas": CHECK_AREAS, "evaluate": False, "budget_scale": 4})
-        rel = (base["objective"] - more["objective"]) / abs(more["objective"])
-        print(f"Quality at {CHECK_AREAS} areas: default budgets objective {base['objective']:.8g} "
-              f"({base['iterations']} iterations, {base['seconds']:.1f} s); 4x iterations and restarts "
-              f"{more['objective']:.8g} ({more['iterations']} iterations, {more['seconds']:.1f} s)")
-        print(f"  relative difference {rel:+.2e}; goal within {CHECK_RTOL:.1%}: {verdict(abs(rel) <= CHECK_RTOL)}")
-        print()
-        print(f"BLAS threads at {TARGET_AREAS} areas (design cut at 300 iterations):")
-        for threads in ("1", "2"):
-            r = measure({"areas": TARGET_AREAS, "max_iter": 300}, threads=threads)
-            print(f"  OPENBLAS_NUM_THREADS={threads}: lyap {1e3 * r['floor']:.2f} ms, eval {1e3 * r['score']:.2f} ms, "
-                  f"value+grad {1e3 * r['value_grad']:.2f} ms, design {r['seconds']:.1f} s wall "
-                  f"({r['cpu']:.1f} s CPU) for {r['iterations']} iterations: "
-                  f"{1e3 * r['seconds'] / max(r['iterations'], 1):.1f} ms per iteration", flush=True)
-        print()
-    if args.profile:
-        for line in profile_lines(TARGET_AREAS):
-            print(line)
-        print()
+    print("gains = free gains; rel = (objective - baseline) / |baseline| (negative: lower than the baseline);")
+    print("time/cpu = this commit's design (wall/CPU s), base s/cpu = the baseline's; MiB = peak memory;")
+    print("evals = points evaluated; v+g = one exact value and gradient at the informed start (base v+g: the")
+    print("baseline's, measured in its own child); lyap = one bare")
+    print("solve_discrete_lyapunov of the closed loop's size; x = v+g / lyap. A row passes when it converged,")
+    print(f"met its budgets, stayed under {MEMORY_MIB} MiB, is not above the baseline (1e-6) and within its limit.")
+    print(f"Rows not passing: {'none' if not misses else '; '.join(misses)}")
     print(f"(measured in {time.perf_counter() - t_start:.0f} s; load average now {os.getloadavg()[0]:.1f})")
     return 0
 

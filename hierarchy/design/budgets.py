@@ -69,7 +69,7 @@ def design_budgets(spec: Spec, options: Options | None = None, start: Gains | No
         # Score under the spec's own activity prices, not the Lagrangian's.
         ref = bcd.ref
         ref.prices = prob.prices.copy()
-        ref.evaluations = prob.evaluations
+        ref.evaluations, ref.values, ref.solves = prob.evaluations, prob.values, prob.solves
         for attr in ("silence_checked", "stream_cover"):
             if hasattr(prob, attr):
                 setattr(ref, attr, getattr(prob, attr))
@@ -151,9 +151,10 @@ class _BlockDescent:
 
             kappa = self.kappa + self.rows.V.T @ self.mu
             areas = tuple(replace(a, activity_price=float(k)) for a, k in zip(self.spec.areas, kappa))
-            count = self.prob.evaluations
+            counts = self.prob.evaluations, self.prob.values, self.prob.solves
             self.prob = Problem(replace(self.spec, areas=areas))
-            self.prob.evaluations = count  # one count over the whole design
+            # One count over the whole design.
+            self.prob.evaluations, self.prob.values, self.prob.solves = counts
         self.prob.prices = self.base + self.rows.W.T @ self.mu
 
     def measure(self, theta):
@@ -240,7 +241,7 @@ class _BlockDescent:
         factor = np.sqrt(np.clip(ratio, 0.25, 4.0))
         if np.all(np.abs(factor - 1.0) < 1e-12):
             return best
-        f0, _ = self.prob.value_and_grad(best.x)
+        f0 = self.prob.value(best.x)
         trial = best.x.copy()
         for link, c in zip(self.spec.links, factor):
             if c == 1.0:
@@ -249,7 +250,7 @@ class _BlockDescent:
                 trial[sl] *= c
             for sl in _receivers(self.prob, link):
                 trial[sl] /= c
-        f1, _ = self.prob.value_and_grad(trial)
+        f1 = self.prob.value(trial)
         if np.isfinite(f1) and f1 < f0:
             from dataclasses import replace
 
@@ -323,7 +324,8 @@ class _BlockDescent:
                 polished, curvature = True, None
             else:
                 out = minimise(self.prob.value_and_grad, best.x, max_iter=min(block, left), gtol=opts.gtol,
-                               ftol=opts.ftol, unit=self.prob.units(best.x), curvature=curvature)
+                               ftol=opts.ftol, unit=self.prob.units(best.x), curvature=curvature,
+                               value=self.prob.value)
                 used, curvature = out.iterations, out.curvature
             iterations += used
             left -= used

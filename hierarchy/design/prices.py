@@ -1,5 +1,6 @@
 """The price form: multistart quasi-Newton over every free gain, polished in rounds
-with the silent-link passes between them.
+with the silent-link passes between them; above ``ACTIVE_GAINS`` free gains,
+the active-set design on the links that carry power.
 """
 
 from __future__ import annotations
@@ -13,8 +14,18 @@ from hierarchy.loop.evaluate import loop_radius, score
 from hierarchy.loop.gains import Gains, with_pins
 from hierarchy.spec.model import Spec
 from hierarchy.design.problem import Problem
-from hierarchy.design.quasinewton import CONVERGED, F_FLOOR, FAILED, ITERATION_LIMIT, minimise
+from hierarchy.design.quasinewton import (
+    CONVERGED,
+    DENSE_LIMIT,
+    F_FLOOR,
+    FAILED,
+    ITERATION_LIMIT,
+    Outcome,
+    _Dense,
+    minimise,
+)
 from hierarchy.design.result import DesignResult, Options
+from hierarchy.design.subcircuit import embed, without_links
 from hierarchy.design.silent import (
     _link_powers,
     _receivers,
@@ -25,13 +36,26 @@ from hierarchy.design.silent import (
     _wake_streams,
 )
 
-__all__ = ['CHUNK', 'BALANCE_SNR', 'design_prices', 'raise_unstable_pins']
+__all__ = ['CHUNK', 'BALANCE_SNR', 'ACTIVE_GAINS', 'ACTIVE_ROUNDS', 'ACTIVE_GAIN', 'design_prices',
+           'raise_unstable_pins']
 
 
 #: Iterations between checks for links fading away.
 CHUNK = 300
 #: SNR above which a link's sender/receiver balance is walked directly.
 BALANCE_SNR = 1e3
+#: Above this many free gains the price form designs the active sub-circuit
+#: (:func:`_solve_active`): the whole circuit would run on limited-memory
+#: BFGS (``quasinewton.DENSE_LIMIT``), whose iterations there crawl, while
+#: the links that carry power are few enough for the dense update.
+ACTIVE_GAINS = DENSE_LIMIT
+#: Rounds of the active-set design (sub-circuit design, then wake-up tests
+#: in the whole circuit) before it stops changing links anyway.
+ACTIVE_ROUNDS = 12
+#: A round after a wake-up must lower the objective by more than this
+#: (relative), or the active-set design stops there: waking modes that buy
+#: 1e-8 of the objective each would otherwise take every round.
+ACTIVE_GAIN = 1e-7
 
 
 def _solve_prices(prob: Problem, opts: Options, starts=None, polish_iter=None, wake=True):
@@ -46,7 +70,7 @@ def _solve_prices(prob: Problem, opts: Options, starts=None, polish_iter=None, w
     probes = []
     for x0 in starts:
         out = minimise(fun, x0, max_iter=min(opts.probe_iter, opts.max_iter), gtol=opts.gtol, ftol=opts.ftol,
-                       unit=prob.units(x0))
+                       unit=prob.units(x0), value=prob.value)
         probes.append(out)
     usable = [o for o in probes if np.isfinite(o.f)]
     if not usable:
@@ -62,21 +86,148 @@ def _solve_prices(prob: Problem, opts: Options, starts=None, polish_iter=None, w
     return best, iterations, len(starts)
 
 
-def _polish(prob: Problem, x0, opts: Options, max_iter: int, wake: bool = True, settled: float = 0.0):
+def _switched_off(prob: Problem, theta) -> list:
+    """Links of ``prob`` whose every gain (and, for a prediction, the ``P``
+    that subtracts it) is exactly zero at ``theta`` and none pinned: a
+    design without them is this very design (the sub-circuit invariant)."""
+    pinned = {l.id for l in prob.spec.links if l.pin}
+    out = []
+    for link in prob.spec.links:
+        if link.id in pinned or (link.kind == "prediction" and f"{link.target}->{link.source}" in pinned):
+            continue
+        slices = prob.slices(link.id) + _receivers(prob, link)
+        if slices and all(not np.any(theta[sl]) for sl in slices):
+            out.append(link.id)
+    return out
+
+
+def _solve_active(prob: Problem, opts: Options, starts=None):
+    """:func:`_solve_prices` for large circuits, on the links that carry power.
+
+    After the starts' probes and one round on the whole circuit, the links
+    that fade are switched off (group-tested) and the rest, the active
+    sub-circuit, is designed on its own (with its own switch-off and wake-up
+    tests, and ``opts.max_iter`` iterations). Its design, embedded with the
+    switched-off links at zero, is a design of the whole circuit with the
+    same scores (the sub-circuit invariant); there every silent link is
+    tested for a profitable wake-up (alone, screened jointly, and in
+    streams). A link that wakes joins the next active sub-circuit, and the
+    cycle repeats until no link changes state (or a wake-up bought less than
+    ``ACTIVE_GAIN`` of the objective). The result counts as
+    converged in the whole circuit when its relative gradient there is no
+    larger than in the sub-circuit (zero is a stationary point of a
+    switched-off link, so the two agree unless such a link pulls); else the
+    whole circuit is polished from it. Same return as :func:`_solve_prices`."""
+    best, iterations, nstarts = _solve_prices(prob, opts, starts, polish_iter=CHUNK, wake=False)
+    if not np.isfinite(best.f):
+        return best, iterations, nstarts
+    spec = prob.spec
+    off = _switch_off_fading(prob, best)
+    theta = best.x if off is None else off
+    before = None  # the last sub-circuit's problem and final curvature
+    woken = None
+    for _ in range(ACTIVE_ROUNDS):
+        sub = without_links(spec, _switched_off(prob, theta))
+        keep = [prob.layout.link_index[l.id] for l in sub.links]
+        subprob = Problem(sub, prob.prices[keep])
+        x0 = subprob.pack(prob.unpack(theta))
+        # A round after a wake-up starts with what the last one learnt about
+        # the gains both sub-circuits share (from scratch it would need
+        # about as many iterations as the first round).
+        curvature = None if before is None else _carry_curvature(*before, subprob, x0)
+        part, used = _polish(subprob, x0, opts, opts.max_iter, curvature=curvature)
+        iterations += used
+        if part.status == FAILED and curvature is not None:
+            # The carried model can mislead where the new links change the
+            # landscape (it may lead to where no step helps): start afresh.
+            part, used = _polish(subprob, x0, opts, opts.max_iter)
+            iterations += used
+        before = (subprob, part.curvature)
+        prob.solves += subprob.solves
+        theta = prob.pack(embed(subprob.unpack(part.x), sub, spec))
+        last, best = best, _outcome(prob, theta, part)
+        if not np.isfinite(best.f) or best.status == FAILED:
+            break
+        if woken is not None and not best.f < last.f - ACTIVE_GAIN * max(abs(last.f), F_FLOOR):
+            break  # the wake-up bought next to nothing: stop trading places
+        woken = _wake_silent(prob, best)
+        if woken is None:
+            active = set(l.id for l in sub.links)
+
+            def narrow(ids):
+                keep = active | set(ids)
+                return Problem(without_links(spec, [l.id for l in spec.links if l.id not in keep]),
+                               prob.prices[[prob.layout.link_index[l.id] for l in spec.links if l.id in keep]])
+
+            woken, used = _wake_streams(prob, best, opts, narrow=narrow)
+            iterations += used
+        if woken is None:
+            prob.silence_checked = (best.f, _tested_links(prob, best))
+            break
+        theta = woken
+    if np.isfinite(best.f) and best.status == CONVERGED and not best.grad_norm <= part.grad_norm * 1.01 + opts.gtol:
+        # The whole circuit's gradient is larger than the sub-circuit's: a
+        # switched-off link pulls after all. Carry on there.
+        more, used = _polish(prob, best.x, opts, opts.max_iter)
+        iterations += used
+        best = more if more.f <= best.f else best
+    return best, iterations, nstarts
+
+
+def _carry_curvature(old: Problem, curvature, new: Problem, x0):
+    """The curvature model ``curvature`` of ``old`` (as an outcome holds it:
+    model and units) brought onto the gains of ``new`` at ``x0``: gains the
+    two share keep what was learnt, new ones start uncoupled at a typical
+    size; ``None`` if there is nothing to carry."""
+    if curvature is None or not isinstance(curvature[0], _Dense) or curvature[0].H is None or new.size > DENSE_LIMIT:
+        return None
+    curv, unit = curvature
+    where = {(owner, name): sl for owner, blocks in old.by_owner.items() for name, sl, _ in blocks}
+    src, dst = [np.zeros(0, int)], [np.zeros(0, int)]
+    for owner, blocks in new.by_owner.items():
+        for name, sl, _ in blocks:
+            was = where.get((owner, name))
+            if was is not None and was.stop - was.start == sl.stop - sl.start:
+                src.append(np.arange(was.start, was.stop))
+                dst.append(np.arange(sl.start, sl.stop))
+    src, dst = np.concatenate(src), np.concatenate(dst)
+    if not len(src):
+        return None
+    H = np.triu(curv.H) + np.triu(curv.H, 1).T  # only the upper triangle is kept
+    carried = _Dense()
+    out = np.eye(new.size) * float(np.mean(np.diag(H)[src]))
+    out[np.ix_(dst, dst)] = H[np.ix_(src, src)]
+    carried.H = np.asfortranarray(out)
+    units = new.units(x0)
+    units[dst] = unit[src]
+    return carried, units
+
+
+def _outcome(prob: Problem, theta, like=None) -> Outcome:
+    """An :class:`~hierarchy.design.quasinewton.Outcome` of ``prob`` at ``theta`` (status
+    and message from ``like``, the search that reached it)."""
+    f, g = prob.value_and_grad(theta)
+    grel = float("inf") if g is None else float(np.max(np.abs(g * prob.units(theta)), initial=0.0)) / max(abs(f), F_FLOOR)
+    if like is None:
+        return Outcome(theta, f, grel, 0, CONVERGED, "")
+    return Outcome(theta, f, grel, like.iterations, like.status, like.message)
+
+def _polish(prob: Problem, x0, opts: Options, max_iter: int, wake: bool = True, settled: float = 0.0,
+            curvature=None):
     """Minimise from ``x0`` in rounds of at most ``CHUNK`` iterations. Between
     rounds, switch off links that are fading away, rebalance high-SNR links
     once a round ended on its own, and try to wake silent links or modes
     after any round that did not fail (unless ``wake`` is false). With ``settled``,
     also stop after a round that lowers the objective by at most that much
-    (relative). The quasi-Newton curvature is carried from round to round.
+    (relative). The quasi-Newton curvature is carried from round to round
+    (and starts from ``curvature``, as an outcome holds it, if given).
     Returns the best outcome and the iterations."""
     best, x, iterations, wakes, balances = None, x0, 0, 0, 0
-    last = prob.value_and_grad(x0)[0] if settled else None
+    last = prob.value(x0) if settled else None
     converged_f = np.inf  # objective at the last converged round
-    curvature = None
     while iterations < max_iter:
         out = minimise(prob.value_and_grad, x, max_iter=min(CHUNK, max_iter - iterations),
-                       gtol=opts.gtol, ftol=opts.ftol, unit=prob.units(x), curvature=curvature)
+                       gtol=opts.gtol, ftol=opts.ftol, unit=prob.units(x), curvature=curvature, value=prob.value)
         iterations += out.iterations
         curvature = out.curvature
         # (Switching a link off may cost rounding, which the test allows.)
@@ -144,7 +295,7 @@ def _balance_links(prob: Problem, best):
                 trial[sl] *= np.exp(t)
             for sl in receivers:
                 trial[sl] *= np.exp(-t)
-            return prob.value_and_grad(trial)[0], trial
+            return prob.value(trial), trial
 
         h = 0.05
         (fp, _), (fm, _) = at(h), at(-h)
@@ -184,7 +335,8 @@ def design_prices(spec: Spec, options: Options | None = None, start: Gains | Non
     if start is not None:
         base = with_pins(spec, start)
         starts = [prob.pack(base)]
-    best, iterations, nstarts = _solve_prices(prob, opts, starts)
+    solve = _solve_active if prob.size > ACTIVE_GAINS else _solve_prices
+    best, iterations, nstarts = solve(prob, opts, starts)
     return _finish(prob, best.x, best, iterations, nstarts, time.perf_counter() - t0, "price")
 
 
@@ -202,15 +354,18 @@ def _finish(prob: Problem, theta, best, iterations, nstarts, seconds, form, shad
     tested = checked[1] if checked is not None and checked[0] == best.f else None
     silent = _silence_reasons(prob, powers, tested, shadow)
     return DesignResult(spec, status, message, gains, scores, scores.objective, form,
-                        iterations=iterations, restarts=nstarts, evaluations=prob.evaluations,
+                        iterations=iterations, restarts=nstarts, evaluations=prob.solves,
                         seconds=seconds, grad_norm=best.grad_norm, silent=silent)
 
 
 def raise_unstable_pins(prob: Problem):
-    """If the pinned gains alone make the loop unstable, say which."""
+    """If the pinned gains alone leave no usable loop, say why: scoring them
+    names an unstable or too badly conditioned loop; what is left is a loop
+    within ``SEARCH_MARGIN`` of the edge."""
     from hierarchy.errors import UnstableError
 
     if prob.size == 0:
+        score(prob.layout, prob.pins)
         radius = loop_radius(assemble(prob.layout, prob.pins))
         raise UnstableError(f"the pinned gains make the closed loop unstable (spectral radius {radius:.4g})",
                             place="pin", fix="change the pinned matrices (for example a smaller M or K)")

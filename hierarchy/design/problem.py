@@ -15,9 +15,19 @@ import numpy as np
 import scipy.linalg as sla
 
 from hierarchy.loop.closedloop import Layout
-from hierarchy.loop.evaluate import area_radius, flat_cost_and_gradient
+from hierarchy.loop.evaluate import _gradient, _priced_value, _solve, area_radius
 from hierarchy.loop.gains import Gains, gain_shapes, pinned_gains
+from hierarchy.memory import keep_freed_memory
 from hierarchy.spec.model import PREDICTION, Spec
+
+#: The design search keeps the area block's spectral radius below
+#: ``1 - SEARCH_MARGIN``: closer to the edge the covariances grow like
+#: ``1 / (1 - radius)`` and a line search that walks an area there (a mode
+#: that costs nothing, say) is left with steps too small to move at all
+#: (a 64-area design once stopped at radius 1 - 1.8e-8, "line search cannot
+#: make progress"). Scores of given gains still accept any stable loop
+#: (:data:`~hierarchy.spec.rules.STABLE_RADIUS`).
+SEARCH_MARGIN = 1e-6
 
 #: Evaluations made by every :class:`Problem` of this process, for progress
 #: reports from another thread (see ``hierarchy.cli``); only ever increased.
@@ -46,6 +56,7 @@ class Problem:
     """
 
     def __init__(self, spec: Spec, prices=None):
+        keep_freed_memory()  # an optimisation reuses its temporaries thousands of times
         self.spec = spec
         self.layout = Layout(spec)
         self.prices = self.layout.price.copy() if prices is None else np.asarray(prices, float).copy()
@@ -90,7 +101,10 @@ class Problem:
         prior = sum(a.weight * float(np.trace(world.selector(a.tracks) @ self.world_cov @ world.selector(a.tracks).T))
                     for a in spec.areas if a.has_target)
         self.reference = prior if prior > 0 else 1.0
-        self.evaluations = 0
+        self.evaluations = 0  # values with gradients
+        self.values = 0  # values alone
+        self.solves = 0  # distinct points evaluated (a gradient at the last point reuses its solve)
+        self._last = None  # (theta, flat gains, radius, solution) of the last evaluation
 
     def _node_scales(self) -> dict:
         world, cov = self.spec.world, self.world_cov
@@ -159,15 +173,45 @@ class Problem:
             theta[off:off + n] = np.asarray(getattr(gains, kind)[owner][name]).ravel() / factor
         return theta
 
+    def _solution(self, theta: np.ndarray):
+        """``(g, radius, solution)`` at ``theta``; the last one is kept, so
+        that a gradient asked for at an accepted trial point costs only its
+        adjoint."""
+        last = self._last
+        if last is not None and np.array_equal(last[0], theta):
+            return last[1:]
+        g = self.flat(theta)
+        self.solves += 1
+        radius, sol = _solve(self.layout, g, SEARCH_MARGIN)
+        self._last = (np.array(theta, dtype=float), g, radius, sol)
+        return g, radius, sol
+
+    def _value(self, sol):
+        return _priced_value(self.layout, sol, self.prices)
+
     def value_and_grad(self, theta: np.ndarray):
         """Relative objective ``J / reference`` and its gradient in solver
-        units (``inf, None`` when the closed loop is unstable)."""
+        units (``inf, None`` when the closed loop is unstable, or its area
+        block within :data:`SEARCH_MARGIN` of the edge)."""
         self.evaluations += 1
         EVALUATIONS[0] += 1
-        J, grad, _ = flat_cost_and_gradient(self.layout, self.flat(theta), self.prices)
-        if grad is None:
+        g, radius, sol = self._solution(theta)
+        if sol is None:
             return float("inf"), None
+        J, lam = self._value(sol)
+        grad = _gradient(self.layout, g, sol, lam)
         return J / self.reference, self.free_factor * grad[self.free_at] / self.reference
+
+    def value(self, theta: np.ndarray) -> float:
+        """The objective of :meth:`value_and_grad` alone (the very same
+        number), at about half the cost: for trial points that need no
+        gradient. ``inf`` when the closed loop is unstable."""
+        self.values += 1
+        EVALUATIONS[0] += 1
+        g, radius, sol = self._solution(theta)
+        if sol is None:
+            return float("inf")
+        return self._value(sol)[0] / self.reference
 
     def slices(self, owner: str, names: str = "MGSPK") -> list:
         """Slices of ``theta`` holding the free gains ``names`` of one link or area."""

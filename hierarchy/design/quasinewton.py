@@ -57,9 +57,14 @@ class Outcome:
 
 
 def minimise(fun, x0, *, max_iter=500, gtol=1e-8, ftol=1e-12, memory=12, unit=None, curvature=None,
-             callback=None) -> Outcome:
+             callback=None, value=None) -> Outcome:
     """Minimise ``fun(x) -> (f, grad)`` from ``x0``; ``f = inf`` marks a
     forbidden point (unstable loop), which the line search steps back from.
+
+    ``value(x)``, if given, must return the very ``f`` of ``fun(x)`` at less
+    cost: the line search then tries its points by value and asks ``fun``
+    for the gradient only at the point it accepts (a ``fun`` that keeps its
+    last evaluation then pays there only for the gradient).
 
     The variables are measured in ``unit`` (their typical sizes; default
     ``max(|x0|, 1)``) and convergence is judged on the objective's own scale,
@@ -93,6 +98,14 @@ def minimise(fun, x0, *, max_iter=500, gtol=1e-8, ftol=1e-12, memory=12, unit=No
         f, g = outer(z * unit)
         return f, (None if g is None else g * unit)
 
+    if value is None:
+        def trial(z):
+            return fun(z)
+    else:
+        def trial(z):
+            f = value(z * unit)
+            return f, None
+
     x, g = x0 / unit, g * unit
     curv = _Dense() if x.size <= DENSE_LIMIT else _Limited(memory)
     if curvature is not None and type(curvature[0]) is type(curv) and len(curvature[1]) == x.size:
@@ -118,8 +131,10 @@ def minimise(fun, x0, *, max_iter=500, gtol=1e-8, ftol=1e-12, memory=12, unit=No
         step = 1.0 if curv.ready else min(1.0, 1.0 / max(gnorm, 1e-12))
         while True:
             x_new = x + step * d
-            f_new, g_new = fun(x_new)
+            f_new, g_new = trial(x_new)
             if np.isfinite(f_new) and f_new <= f + 1e-4 * step * slope:
+                if g_new is None:
+                    f_new, g_new = fun(x_new)
                 break
             step *= 0.5 if np.isfinite(f_new) else 0.25
             if step * np.max(np.abs(d)) < 1e-14 * max(1.0, np.max(np.abs(x))):

@@ -72,6 +72,13 @@ class LinkLayout:
         return slice(self.copies.stop - self.dim, self.copies.stop)
 
 
+def _sums(idx, weights, minlength):
+    """``np.bincount`` with weights, always float: with no entries at all
+    (a circuit without links) bincount returns integers, and adding floats
+    into them fails."""
+    return np.bincount(idx, weights=weights, minlength=minlength).astype(float, copy=False)
+
+
 class Layout:
     """Index bookkeeping for one spec: where every state and noise sits in q.
 
@@ -403,24 +410,46 @@ class Parts:
     """The compact closed loop for one flat gain vector.
 
     ``B = Gs U_xi`` and ``H = (I - Pm) B`` are the link rows over ``xi`` (what
-    is sent, before and after subtracting predictions); ``Phi_z`` the area
-    rows of ``Phi``; ``Gv`` the sender gains on sensor readings (``m x dim
-    v``); ``Q1 = Km Gv`` and ``Q2 = Km (I - Pm)`` map sensor and link noises
-    into the areas, ``Q2_omega = Q2 Omega_eta``; ``p`` and ``k`` are the
-    entries of ``Pm`` and ``Km`` and ``P_omega`` holds ``(Pm Omega_eta)`` at
-    ``Pm``'s entries.
+    is sent, before and after subtracting predictions), held by their
+    entries ``b`` and ``h`` on the fixed patterns of :class:`Structure`
+    (a link row has only its sender's and its paired prediction's columns);
+    ``Phi_z`` the area rows of ``Phi``; ``Gv`` the sender gains on sensor
+    readings (``m x dim v``); ``Q1 = Km Gv`` and ``Q2 = Km (I - Pm)`` map
+    sensor and link noises into the areas (``q2`` holds ``Q2``'s entries,
+    ``q2_omega`` those of ``Q2 Omega_eta``); ``p`` and ``k`` are the entries
+    of ``Pm`` and ``Km`` and ``P_omega`` holds ``(Pm Omega_eta)`` at ``Pm``'s
+    entries.
     """
 
-    B: np.ndarray
-    H: np.ndarray
+    b: np.ndarray
+    h: np.ndarray
     Phi_z: np.ndarray
     Gv: np.ndarray
     p: np.ndarray
     k: np.ndarray
     Q1: np.ndarray
-    Q2: np.ndarray
-    Q2_omega: np.ndarray
+    q2: np.ndarray
+    q2_omega: np.ndarray
     P_omega: np.ndarray
+
+
+def _pairs(left: np.ndarray, right: np.ndarray):
+    """Every index pair ``(i, j)`` with ``left[i] == right[j]``: the terms of
+    a product of two sparse patterns that share the inner index.
+
+    Examples
+    --------
+    >>> i, j = _pairs(np.array([0, 1, 1]), np.array([1, 0, 1]))
+    >>> sorted(zip(i.tolist(), j.tolist()))
+    [(0, 1), (1, 0), (1, 2), (2, 0), (2, 2)]
+    """
+    left, right = np.asarray(left, dtype=int), np.asarray(right, dtype=int)
+    order = np.argsort(right, kind="stable")
+    lo = np.searchsorted(right[order], left, "left")
+    counts = np.searchsorted(right[order], left, "right") - lo
+    i = np.repeat(np.arange(len(left)), counts)
+    shift = np.repeat(lo - (np.cumsum(counts) - counts), counts)
+    return i, order[shift + np.arange(len(i))]
 
 
 class Structure:
@@ -507,7 +536,6 @@ class Structure:
                            if ll.pair is not None and layout.links[ll.pair].copies is None]
         self.p_blocks = {ll.index: (int(e0), (ll.dim, layout.links[ll.pair].dim))
                          for ll, e0 in zip(undelayed_pairs, starts)}
-        self.Pm = SparseProduct(self.P.rows, self.P.cols, (self.m, self.m))
         self.PmT = SparseProduct(self.P.cols, self.P.rows, (self.m, self.m))
         self.Km = SparseProduct(self.K.rows, self.K.cols, (self.nz, self.m))
         self.KmT = SparseProduct(self.K.cols, self.K.rows, (self.m, self.nz))
@@ -519,7 +547,7 @@ class Structure:
             sl = slice(vcol[s.name], vcol[s.name] + s.dim)
             self.Omega_v[sl, sl] = s.noise
         noise = Entries.of((rows[l.id], rows[l.id], 0, l.noise.shape) for l in spec.links)
-        self.Omega_eta = SparseProduct(noise.rows, noise.cols, (self.m, self.m))
+        self.eta = noise
         self.omega_eta = np.concatenate([[0.0]] + [l.noise.ravel() for l in spec.links])[1:]
         # (Pm Omega_eta) at each entry of Pm: entry (i, j) of P_l sums P_l[i, c] N_p[c, j]
         # over the paired prediction's noise N_p (Omega_eta is block diagonal).
@@ -562,33 +590,98 @@ class Structure:
         self.area_start = np.array([zcol[a.name] for a in spec.areas], dtype=int)
         self.n_area_states = layout.n_area_states
         self.kappa = np.array([a.activity_price for a in spec.areas])
+        self._patterns()
         # The world's stationary part, solved by hierarchy.loop.evaluate on first use.
         self.world = None
 
+    def _patterns(self):
+        """Fixed sparsity patterns of the link rows and the noise maps, and
+        the index pairs of every product the evaluation forms from them.
+
+        A link row has at most its sender's columns and its paired
+        prediction's: a handful of entries, where dense ``m x dim xi`` rows
+        made the link rows, ``H' diag(price) H`` and the gradient on ``K``
+        the bulk of an evaluation at a few hundred links. Patterns are
+        structural (from the positions of the gains), so the same index
+        maps serve every gain vector. Keys are ``row * columns + column``."""
+        nx, nxi, nz, m = self.nx, self.nxi, self.nz, self.m
+        # B = Gv C (sensor senders) + Gz (area senders) on the xi columns.
+        Cr, Cc = np.nonzero(self.C_all)
+        gi, ci = _pairs(self.Gv.cols, Cr)
+        kv = self.Gv.rows[gi] * nxi + Cc[ci]
+        kz = self.Gz.rows * nxi + nx + self.Gz.cols
+        # A residual's P on a delayed prediction acts on a state, like a sender gain.
+        kd = self.Pd.rows * nxi + nx + self.Pd.cols
+        bkeys = np.unique(np.concatenate([kv, kz, kd]))
+        self.b_gv = (np.searchsorted(bkeys, kv), gi, self.C_all[Cr[ci], Cc[ci]])
+        self.b_gz = np.searchsorted(bkeys, kz)
+        self.b_pd = np.searchsorted(bkeys, kd)
+        self.b_rows, self.b_cols = bkeys // nxi, bkeys % nxi
+        # H = B - Pm B: each residual row takes its paired prediction's entries.
+        pe, bf = _pairs(self.P.cols, self.b_rows)
+        kp = self.P.rows[pe] * nxi + self.b_cols[bf]
+        hkeys = np.unique(np.concatenate([bkeys, kp]))
+        self.h_b = np.searchsorted(hkeys, bkeys)
+        self.h_p = (np.searchsorted(hkeys, kp), pe, bf)
+        self.h_rows, self.h_cols = hkeys // nxi, hkeys % nxi
+        # Km H (the area rows of Phi, dense), and entries of H' H by row.
+        ke, kh = _pairs(self.K.cols, self.h_rows)
+        self.km_h = (ke, kh, self.K.rows[ke] * nxi + self.h_cols[kh])
+        f1, f2 = _pairs(self.h_rows, self.h_rows)
+        self.hh = (f1, f2, self.h_cols[f1] * nxi + self.h_cols[f2])
+        area = self.h_cols[f1] >= nx
+        self.hh_z = (f1[area], f2[area], (self.h_cols[f1[area]] - nx) * nxi + self.h_cols[f2[area]])
+        # Q2 = Km - Km Pm on (area state, link row), Q2 Omega_eta, and Q2 Omega_eta Q2'.
+        pk_e, pk_f = self.p_k
+        kk = self.K.rows * m + self.K.cols
+        kq = self.K.rows[pk_f] * m + self.P.cols[pk_e]
+        qkeys = np.unique(np.concatenate([kk, kq]))
+        self.q_k, self.q_p = np.searchsorted(qkeys, kk), np.searchsorted(qkeys, kq)
+        self.q_rows, self.q_cols = qkeys // m, qkeys % m
+        qa, ob = _pairs(self.q_cols, self.eta.rows)
+        ko = self.q_rows[qa] * m + self.eta.cols[ob]
+        okeys = np.unique(ko)
+        self.q_omega = (np.searchsorted(okeys, ko), qa, ob)
+        self.o_rows, self.o_cols = okeys // m, okeys % m
+        vo, vq = _pairs(self.o_cols, self.q_cols)
+        self.v2 = (vo, vq, self.o_rows[vo] * nz + self.q_rows[vq])
+
+    def dense_h(self, h: np.ndarray) -> np.ndarray:
+        """The link rows ``H`` (``m x dim xi``) from their entries ``h``."""
+        H = np.zeros((self.m, self.nxi))
+        H[self.h_rows, self.h_cols] = h
+        return H
+
     def parts(self, g: np.ndarray) -> Parts:
         """The compact closed loop for the flat gain vector ``g``."""
-        n, nx = self.n, self.nx
+        nx, nxi = self.nx, self.nxi
         if self.delays:
             g = np.append(g, 1.0)  # slot `one`: the fixed entries of delayed links
         Gv = np.zeros((self.m, self.nv))
         Gv[self.Gv.rows, self.Gv.cols] = g[self.Gv.at]
-        B = np.zeros((self.m, self.nxi))
-        B[:, :n] = Gv @ self.C_all
-        B[self.Gz.rows, nx + self.Gz.cols] = g[self.Gz.at]
+        dst, gi, cv = self.b_gv
+        nb = len(self.b_rows)
+        b = _sums(dst, weights=g[self.Gv.at][gi] * cv, minlength=nb)
+        b[self.b_gz] += g[self.Gz.at]
         if self.delays:
-            B[self.Pd.rows, nx + self.Pd.cols] = -g[self.Pd.at]
+            b[self.b_pd] -= g[self.Pd.at]
         p, k = g[self.P.at], g[self.K.at]
-        H = B - self.Pm.matmul(p, B)
-        Phi_z = self.Km.matmul(k, H)
+        h = np.zeros(len(self.h_rows))
+        h[self.h_b] = b
+        dst, pe, bf = self.h_p
+        h -= _sums(dst, weights=p[pe] * b[bf], minlength=len(h))
+        ke, kh, dst = self.km_h
+        Phi_z = _sums(dst, weights=k[ke] * h[kh], minlength=self.nz * nxi).reshape(self.nz, nxi)
         Phi_z[self.M.rows, nx + self.M.cols] += g[self.M.at]
         if self.delays:
             Phi_z[self.Kd.rows, nx + self.Kd.cols] += g[self.Kd.at]
             Phi_z[self.shift[0], nx + self.shift[1]] += 1.0
-        Q2 = np.zeros((self.nz, self.m))
-        Q2[self.K.rows, self.K.cols] = k
-        Q2 -= self.PmT.matmul(p, Q2.T).T
-        # Omega_eta is symmetric: Q2 Omega = (Omega Q2')'.
-        Q2_omega = self.Omega_eta.matmul(self.omega_eta, Q2.T).T
+        pk_e, pk_f = self.p_k
+        nq = len(self.q_rows)
+        q2 = _sums(self.q_k, weights=k, minlength=nq)
+        q2 -= _sums(self.q_p, weights=k[pk_f] * p[pk_e], minlength=nq)
+        dst, qa, ob = self.q_omega
+        q2_omega = _sums(dst, weights=q2[qa] * self.omega_eta[ob], minlength=len(self.o_rows))
         dst, src, val = self.p_omega
-        P_omega = np.bincount(dst, weights=p[src] * val, minlength=len(p))
-        return Parts(B, H, Phi_z, Gv, p, k, self.Km.matmul(k, Gv), Q2, Q2_omega, P_omega)
+        P_omega = _sums(dst, weights=p[src] * val, minlength=len(p))
+        return Parts(b, h, Phi_z, Gv, p, k, self.Km.matmul(k, Gv), q2, q2_omega, P_omega)

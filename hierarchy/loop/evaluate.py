@@ -13,7 +13,7 @@ from dataclasses import dataclass, field
 import numpy as np
 import scipy.linalg as sla
 
-from hierarchy.loop.closedloop import ClosedLoop, Layout
+from hierarchy.loop.closedloop import ClosedLoop, Layout, _sums
 from hierarchy.errors import UnstableError
 from hierarchy.loop.gains import Gains, check_gains, with_pins
 from hierarchy.spec.model import Spec
@@ -217,13 +217,15 @@ class _Solution:
     parts: object
     schur: _Schur
     Sigma: np.ndarray
-    HS: np.ndarray          # H Sigma (link rows over xi)
+    hs: np.ndarray          # H Sigma at the entries of H's pattern
     row_power: np.ndarray   # E s_i^2 for every link row
 
 
-def _solve(layout: Layout, g: np.ndarray):
+def _solve(layout: Layout, g: np.ndarray, margin: float = 0.0):
     """Stationary regime of the flat gains ``g``: ``(radius, _Solution)``,
-    with ``None`` for the solution when the loop is unstable.
+    with ``None`` for the solution when the loop is unstable (or, in a
+    search, ``margin > 0``, when the area block's radius is not below
+    ``1 - margin`` or a variance comes out negative).
 
     The world block does not depend on the gains, so only the area part is
     solved: a Stein equation for ``Sigma_zx`` and a Lyapunov equation for
@@ -237,25 +239,37 @@ def _solve(layout: Layout, g: np.ndarray):
     Pzx, Pzz = p.Phi_z[:, :nx], p.Phi_z[:, nx:]
     sch = _Schur(Pzz)
     radius = max(world.radius, sch.radius)
-    if not radius < STABLE_RADIUS:
+    if not (radius < STABLE_RADIUS and sch.radius < 1.0 - margin):
         return radius, None
     PS = Pzx @ world.Sigma
     Szx = _stein(sch, False, world.schur, False, PS @ world.A.T)
     cross = Pzz @ Szx @ Pzx.T
-    V = p.Q1 @ st.Omega_v @ p.Q1.T + p.Q2 @ p.Q2_omega.T
+    vo, vq, dst = st.v2
+    V = p.Q1 @ st.Omega_v @ p.Q1.T
+    V += _sums(dst, weights=p.q2_omega[vo] * p.q2[vq], minlength=st.nz * st.nz).reshape(st.nz, st.nz)
     Szz = _stein(sch, False, sch, False, PS @ Pzx.T + cross + cross.T + V)
     Sigma = np.empty((st.nxi, st.nxi))
     Sigma[:nx, :nx] = world.Sigma
     Sigma[nx:, :nx] = Szx
     Sigma[:nx, nx:] = Szx.T
     Sigma[nx:, nx:] = 0.5 * (Szz + Szz.T)
-    HS = p.H @ Sigma
-    row_power = np.einsum("ij,ij->i", HS, p.H) + np.einsum("ij,ij->i", p.Gv @ st.Omega_v, p.Gv)
-    row_power += np.bincount(st.P.rows, weights=p.P_omega * p.p, minlength=st.m)
+    f1, f2, key = st.hh
+    hs = _sums(f2, weights=p.h[f1] * Sigma.ravel()[key], minlength=len(p.h))
+    row_power = _sums(st.h_rows, weights=p.h * hs, minlength=st.m)
+    row_power += np.einsum("ij,ij->i", p.Gv @ st.Omega_v, p.Gv)
+    row_power += _sums(st.P.rows, weights=p.P_omega * p.p, minlength=st.m)
     if not (np.all(np.isfinite(Sigma)) and np.all(np.isfinite(row_power))):
         # Stable on paper, but the covariances overflow: no usable regime.
         return float("inf"), None
-    return radius, _Solution(p, sch, Sigma, HS, row_power)
+    var = np.diag(Sigma)
+    if margin > 0 and (var.min(initial=0.0) < -PSD_RTOL * var.max(initial=0.0) or
+                       row_power.min(initial=0.0) < -PSD_RTOL * np.abs(row_power).max(initial=0.0)):
+        # In a search only (scores of given gains go on to check_scores,
+        # which names the fault): a negative variance means the solve lost
+        # its accuracy, and a search would dive into the nonsense it returns
+        # (objectives of -1e15 were seen).
+        return float("inf"), None
+    return radius, _Solution(p, sch, Sigma, hs, row_power)
 
 
 def area_radius(layout: Layout, g: np.ndarray) -> float:
@@ -327,9 +341,11 @@ def link_covariances(layout: Layout, gains: Gains) -> list | None:
 def _link_covariances(layout: Layout, sol: _Solution) -> list:
     st, p = layout.structure, sol.parts
     GvO = p.Gv @ st.Omega_v
+    H = st.dense_h(p.h)
+    HS = H @ sol.Sigma
     out = [None] * len(layout.links)
     for links, rows in st.link_groups:  # links of one signal size, batched
-        cov = sol.HS[rows] @ p.H[rows].transpose(0, 2, 1) + GvO[rows] @ p.Gv[rows].transpose(0, 2, 1)
+        cov = HS[rows] @ H[rows].transpose(0, 2, 1) + GvO[rows] @ p.Gv[rows].transpose(0, 2, 1)
         for i, c in zip(links, cov):
             out[i] = c
     for i, (e0, shape) in st.p_blocks.items():  # the paired prediction's noise, through P
@@ -427,6 +443,23 @@ def _ill_conditioned(what: str) -> UnstableError:
             "`hierarchy design` finds well-behaved gains")
 
 
+def _noise_through(layout: Layout, Gamma: np.ndarray):
+    """``Gamma Omega Gamma'`` and the diagonal of ``Omega``, from the noise
+    blocks of the compact structure (world, sensors, link noises as sparse
+    entries) instead of the dense ``(dim nu x dim nu)`` ``Omega``, which at
+    2,000 links holds millions of zeros."""
+    import scipy.sparse as sp
+
+    st = layout.structure
+    n, nv, m = st.n, st.nv, st.m
+    Q = layout.spec.world.Q
+    Gw, Gv, Ge = Gamma[:, :n], Gamma[:, n:n + nv], Gamma[:, n + nv:]
+    eta = sp.csr_matrix((st.omega_eta, (st.eta.rows, st.eta.cols)), shape=(m, m))
+    noise = Gw @ Q @ Gw.T + Gv @ st.Omega_v @ Gv.T + np.asarray((eta @ Ge.T).T) @ Ge.T
+    diag = np.concatenate([np.diag(Q), np.diag(st.Omega_v), eta.diagonal()])
+    return noise, diag
+
+
 def check_scores(layout: Layout, gains: Gains, Sigma: np.ndarray, scores: Scores) -> Scores:
     """Check final scores before anyone sees them, independently of the
     fast path that computed them: ``Sigma`` must solve the Lyapunov equation
@@ -446,8 +479,7 @@ def check_scores(layout: Layout, gains: Gains, Sigma: np.ndarray, scores: Scores
     from hierarchy.loop.closedloop import assemble
 
     loop = assemble(layout, gains)
-    Omega = layout.Omega
-    noise = loop.Gamma @ Omega @ loop.Gamma.T
+    noise, omega_diag = _noise_through(layout, loop.Gamma)
     moved = loop.Phi @ Sigma @ loop.Phi.T
     size = np.linalg.norm(Sigma) + np.linalg.norm(moved) + np.linalg.norm(noise)
     if not np.isfinite(size):
@@ -456,7 +488,7 @@ def check_scores(layout: Layout, gains: Gains, Sigma: np.ndarray, scores: Scores
     if residual > RESIDUAL_RTOL * size:
         raise _ill_conditioned(f"the stationary covariance solves its Lyapunov equation only to a relative "
                                f"residual of {residual / size:.2g} (at most {RESIDUAL_RTOL:g} is trusted)")
-    scale = max(float(np.max(np.diag(Sigma), initial=0.0)), float(np.max(np.diag(Omega), initial=0.0)))
+    scale = max(float(np.max(np.diag(Sigma), initial=0.0)), float(np.max(omega_diag, initial=0.0)))
     nxi = layout.nxi
     if nxi and scale > 0:
         try:
@@ -540,16 +572,8 @@ def cost_and_gradient(layout: Layout, gains: Gains, prices=None):
 
 def _row_dots(A: np.ndarray, ia: np.ndarray, B: np.ndarray, ib: np.ndarray) -> np.ndarray:
     """``A[ia[k]] . B[ib[k]]`` for every ``k``: the entries of ``A B'`` that a
-    sparse gain pattern needs. Rows are gathered a block of about 64 KiB at
-    a time: malloc reuses blocks that small, while megabyte-sized temporaries
-    go back to the system after each evaluation and cost page faults on the
-    next (a third of an evaluation's time at 300 links)."""
-    out = np.empty(len(ia))
-    step = max(1, 8192 // max(A.shape[1], 1))
-    for start in range(0, len(ia), step):
-        stop = start + step
-        out[start:stop] = np.einsum("ij,ij->i", A[ia[start:stop]], B[ib[start:stop]])
-    return out
+    sparse gain pattern needs."""
+    return np.einsum("ij,ij->i", A[ia], B[ib])
 
 
 def flat_cost_and_gradient(layout: Layout, g: np.ndarray, prices=None):
@@ -575,58 +599,91 @@ def flat_cost_and_gradient(layout: Layout, g: np.ndarray, prices=None):
     >>> lay = Layout(spec)                                                # doctest: +SKIP
     >>> J, dg, radius = flat_cost_and_gradient(lay, lay.flatten(gains))  # doctest: +SKIP
     """
-    st = layout.structure
     radius, sol = _solve(layout, g)
     if sol is None:
         return float("inf"), None, radius
+    J, lam = _priced_value(layout, sol, prices)
+    return J, _gradient(layout, g, sol, lam), radius
+
+
+def flat_cost(layout: Layout, g: np.ndarray, prices=None):
+    """The objective of :func:`flat_cost_and_gradient` alone (``inf`` when
+    unstable) and its radius: for trial points that need no gradient, at
+    about half the cost (no adjoint)."""
+    radius, sol = _solve(layout, g)
+    if sol is None:
+        return float("inf"), radius
+    return _priced_value(layout, sol, prices)[0], radius
+
+
+def _priced_value(layout: Layout, sol: _Solution, prices):
+    """``J`` of a solved design and the price of every link row."""
+    st = layout.structure
     if callable(prices):
         prices = prices(_link_powers(st, sol))
     prices = layout.price if prices is None else np.asarray(prices, dtype=float)
-    world = _world_part(layout)
-    p, Sigma, nx, n = sol.parts, sol.Sigma, st.nx, st.n
     lam = prices[st.row_link]
     err = _error_rows(st, sol)
-    activity = np.add.reduceat(np.diag(Sigma)[nx:nx + st.n_area_states], st.area_start)
-    J = float(st.w_rows @ err + st.kappa @ activity + lam @ sol.row_power)
+    activity = np.add.reduceat(np.diag(sol.Sigma)[st.nx:st.nx + st.n_area_states], st.area_start)
+    return float(st.w_rows @ err + st.kappa @ activity + lam @ sol.row_power), lam
 
+
+def _gradient(layout: Layout, g: np.ndarray, sol: _Solution, lam: np.ndarray) -> np.ndarray:
+    """The exact gradient of :func:`flat_cost_and_gradient` at a solved
+    design with link-row prices ``lam``. Every product with the link rows
+    is taken on their sparse patterns (see ``Structure._patterns``): only
+    the entries the gains sit on are ever formed."""
+    st = layout.structure
+    world = _world_part(layout)
+    p, Sigma, nx, nz = sol.parts, sol.Sigma, st.nx, st.nz
+    h = p.h
     # Adjoint on the area rows. W's area rows: errors and activity (fixed)
     # plus the priced link rows H' diag(price) H.
-    LH = lam[:, None] * p.H
-    Wz = st.Wz_fixed + p.H[:, nx:].T @ LH
+    f1, f2, dst = st.hh_z
+    Wz = st.Wz_fixed + _sums(dst, weights=lam[st.h_rows[f1]] * h[f1] * h[f2],
+                                   minlength=nz * st.nxi).reshape(nz, st.nxi)
     Pzx, Pzz = p.Phi_z[:, :nx], p.Phi_z[:, nx:]
     Azz = _stein(sol.schur, True, sol.schur, True, Wz[:, nx:])
     Azz = 0.5 * (Azz + Azz.T)
     Azx = _stein(sol.schur, True, world.schur, True, Pzz.T @ Azz @ Pzx + Wz[:, :nx])
-    # Y = 2 (Lambda Psi Cov(q)) on the area rows, over xi, sensor noises, link noises.
+    # Y = 2 (Lambda Psi Cov(q)) on the area rows, over xi, sensor noises, link
+    # noises; the last one only at the entries of Q2 (those the gains read).
     AP = Azz @ p.Phi_z
     AP[:, :nx] += Azx @ world.A
     Yx = 2.0 * AP @ Sigma
     Yv = 2.0 * Azz @ (p.Q1 @ st.Omega_v)
-    Ye = 2.0 * Azz @ p.Q2_omega
+    vo, vq, dst = st.v2
+    ye = 2.0 * _sums(vq, weights=Azz.ravel()[dst] * p.q2_omega[vo], minlength=len(p.q2))
+    Yxf = Yx.ravel()
 
     # With delayed links, one more slot takes (and drops) the derivatives of their fixed entries.
     dg = np.zeros(len(g) + st.delays)
     dg[st.M.at] = Yx[st.M.rows, nx + st.M.cols]
     if st.delays:
         dg[st.Kd.at] = Yx[st.Kd.rows, nx + st.Kd.cols]
-    K = st.K
+    K, P = st.K, st.P
+    ke, kh, kdst = st.km_h
+    pk_e, pk_f = st.p_k
     if len(K.at):
-        PY = st.Pm.matmul(p.p, Ye.T)  # (Ye Pm')': the -Pm part of what arrives, over link noises
-        dg[K.at] = (_row_dots(Yx, K.rows, p.H, K.cols) + _row_dots(Yv, K.rows, p.Gv, K.cols)
-                    + Ye[K.rows, K.cols] - PY[K.cols, K.rows])
-    gR = st.KmT.matmul(p.k, Yx) + 2.0 * lam[:, None] * sol.HS
+        # The -Pm part of what arrives, over link noises: (Pm Ye')' at K's entries.
+        dg[K.at] = (_sums(ke, weights=Yxf[kdst] * h[kh], minlength=len(K.at))
+                    + _row_dots(Yv, K.rows, p.Gv, K.cols) + ye[st.q_k]
+                    - _sums(pk_f, weights=p.p[pk_e] * ye[st.q_p], minlength=len(K.at)))
+    # The gradient on what is sent, g_R = Km' Y + 2 diag(price) H Sigma, at H's entries.
+    gr = _sums(kh, weights=p.k[ke] * Yxf[kdst], minlength=len(h)) + 2.0 * lam[st.h_rows] * sol.hs
     gRv = st.KmT.matmul(p.k, Yv) + 2.0 * lam[:, None] * (p.Gv @ st.Omega_v)
-    P = st.P
+    hdst, pe, bf = st.h_p
     if len(P.at):
-        e, f = st.p_k
-        KYe = np.bincount(e, weights=p.k[f] * Ye[K.rows[f], P.cols[e]], minlength=len(P.at))
-        dg[P.at] = -(_row_dots(gR, P.rows, p.B, P.cols) + KYe
+        KYe = _sums(pk_e, weights=p.k[pk_f] * ye[st.q_p], minlength=len(P.at))
+        dg[P.at] = -(_sums(pe, weights=gr[hdst] * p.b[bf], minlength=len(P.at)) + KYe
                      - 2.0 * lam[P.rows] * p.P_omega)
-    gB = gR - st.PmT.matmul(p.p, gR)
+    # g_B = (I - Pm)' g_R at B's entries.
+    gb = gr[st.h_b] - _sums(bf, weights=p.p[pe] * gr[hdst], minlength=len(st.b_rows))
     gBv = gRv - st.PmT.matmul(p.p, gRv)
-    dg[st.Gz.at] = gB[st.Gz.rows, nx + st.Gz.cols]
+    dg[st.Gz.at] = gb[st.b_gz]
     if st.delays:
-        dg[st.Pd.at] = -gB[st.Pd.rows, nx + st.Pd.cols]
+        dg[st.Pd.at] = -gb[st.b_pd]
     Gv = st.Gv
-    dg[Gv.at] = _row_dots(gB[:, :n], Gv.rows, st.C_all, Gv.cols) + gBv[Gv.rows, Gv.cols]
-    return J, dg[:len(g)], radius
+    bdst, gi, cv = st.b_gv
+    dg[Gv.at] = _sums(gi, weights=gb[bdst] * cv, minlength=len(Gv.at)) + gBv[Gv.rows, Gv.cols]
+    return dg[:len(g)]
