@@ -124,10 +124,33 @@ def test_silent_links_say_what_was_tested():
     for info in res.silent.values():
         assert info["verdict"] == "not worth sending"
         assert info["tested"] in ("alone", "stream", "unreachable")
-    # Cut short, the final design was never wake-tested: nothing is claimed.
-    cut = design(relay_chain(3), Options(restarts=1, max_iter=1, probe_iter=1), start=zero_gains(relay_chain(3)),
-                 compare_unpinned=False)
-    assert cut.silent and all(info["verdict"] == "untested" for info in cut.silent.values())
+    # Two parallel relay streams from silence, cut short: one stream wakes, the
+    # design it leads to gets its one iteration and is never wake-tested, so
+    # nothing is claimed about the other stream.
+    chains = two_relay_streams()
+    cut = design(chains, Options(restarts=1, max_iter=1, probe_iter=1), start=zero_gains(chains),
+                 compare_unpinned=False, floor=False)
+    assert cut.status == "iteration limit"
+    assert len(cut.silent) == 2 and all(info["verdict"] == "untested" for info in cut.silent.values())
+
+
+def two_relay_streams():
+    """A gauge whose readings reach the targeted area through either of two
+    untargeted relays (two streams of two links each)."""
+    links = "".join(f"  - {{from: {a}, to: {b}, kind: residual, noise: 0.02, price: 0.002}}\n"
+                    for a, b in [("gauge", "r1"), ("r1", "top"), ("gauge", "q1"), ("q1", "top")])
+    return parse_spec(f"""spec: 1
+world:
+  states:
+    level: {{dim: 1, dynamics: 0.95, noise: 0.05}}
+sensors:
+  gauge: {{observes: {{level: 1}}, noise: 0.05}}
+areas:
+  r1: {{dim: 1}}
+  q1: {{dim: 1}}
+  top: {{tracks: level, weight: 1.0}}
+links:
+{links}""")
 
 
 def test_searches_are_reported_and_agree_on_the_example():

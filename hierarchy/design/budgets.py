@@ -151,10 +151,10 @@ class _BlockDescent:
 
             kappa = self.kappa + self.rows.V.T @ self.mu
             areas = tuple(replace(a, activity_price=float(k)) for a, k in zip(self.spec.areas, kappa))
-            counts = self.prob.evaluations, self.prob.values, self.prob.solves
+            counts = self.prob.evaluations, self.prob.values, self.prob.solves, self.prob.trial_iterations
             self.prob = Problem(replace(self.spec, areas=areas))
             # One count over the whole design.
-            self.prob.evaluations, self.prob.values, self.prob.solves = counts
+            self.prob.evaluations, self.prob.values, self.prob.solves, self.prob.trial_iterations = counts
         self.prob.prices = self.base + self.rows.W.T @ self.mu
 
     def measure(self, theta):
@@ -320,8 +320,11 @@ class _BlockDescent:
             coarse = miss <= COARSE_TOL or step >= COARSE_STEPS
             if coarse and not polished:
                 # Near the budgets: switch off fading links, wake silent ones.
+                trials = self.prob.trial_iterations
                 out, used = _polish(self.prob, best.x, opts, min(left, opts.max_iter))
                 polished, curvature = True, None
+                # Stream trials have their own bound: only the descent draws on the allowance.
+                left += self.prob.trial_iterations - trials
             else:
                 out = minimise(self.prob.value_and_grad, best.x, max_iter=min(block, left), gtol=opts.gtol,
                                ftol=opts.ftol, unit=self.prob.units(best.x), curvature=curvature,

@@ -27,6 +27,8 @@ from hierarchy.design.quasinewton import (
 from hierarchy.design.result import DesignResult, Options
 from hierarchy.design.subcircuit import embed, without_links
 from hierarchy.design.silent import (
+    MAX_STREAMS,
+    STREAM_ITER,
     _link_powers,
     _receivers,
     _silence_reasons,
@@ -221,12 +223,19 @@ def _polish(prob: Problem, x0, opts: Options, max_iter: int, wake: bool = True, 
     also stop after a round that lowers the objective by at most that much
     (relative). The quasi-Newton curvature is carried from round to round
     (and starts from ``curvature``, as an outcome holds it, if given).
-    Returns the best outcome and the iterations."""
+    Returns the best outcome and the iterations (stream trials included).
+
+    ``max_iter`` bounds the descent; the stream trials have their own
+    bound (``STREAM_ITER`` per stream, ``MAX_STREAMS`` streams, at most
+    ``max_iter`` per pass, at most 8 passes), so that a test pass cannot use
+    up the descent's allowance and leave the design unconverged for want of
+    iterations (at 16 areas one pass took 3,000 of the 3,180 iterations)."""
     best, x, iterations, wakes, balances = None, x0, 0, 0, 0
+    trials = 0  # iterations spent by stream trials, not by the descent
     last = prob.value(x0) if settled else None
     converged_f = np.inf  # objective at the last converged round
-    while iterations < max_iter:
-        out = minimise(prob.value_and_grad, x, max_iter=min(CHUNK, max_iter - iterations),
+    while iterations - trials < max_iter:
+        out = minimise(prob.value_and_grad, x, max_iter=min(CHUNK, max_iter - (iterations - trials)),
                        gtol=opts.gtol, ftol=opts.ftol, unit=prob.units(x), curvature=curvature, value=prob.value)
         iterations += out.iterations
         curvature = out.curvature
@@ -249,9 +258,11 @@ def _polish(prob: Problem, x0, opts: Options, max_iter: int, wake: bool = True, 
         # sit silent (a saddle) while the rest of the design still creeps.
         if wake and moved is None and best.status != FAILED and wakes < 8:
             moved = _wake_silent(prob, best)
-            if moved is None and iterations < max_iter:
-                moved, used = _wake_streams(prob, best, opts, max_iter - iterations)
+            if moved is None and iterations - trials < max_iter:
+                moved, used = _wake_streams(prob, best, opts, min(STREAM_ITER * MAX_STREAMS, max_iter))
                 iterations += used
+                trials += used
+                prob.trial_iterations += used
             if moved is None:
                 prob.silence_checked = (best.f, _tested_links(prob, best))
             wakes += 1

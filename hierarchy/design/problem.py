@@ -104,6 +104,7 @@ class Problem:
         self.evaluations = 0  # values with gradients
         self.values = 0  # values alone
         self.solves = 0  # distinct points evaluated (a gradient at the last point reuses its solve)
+        self.trial_iterations = 0  # iterations of stream trials (outside any descent's allowance)
         self._last = None  # (theta, flat gains, radius, solution) of the last evaluation
 
     def _node_scales(self) -> dict:
