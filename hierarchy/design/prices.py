@@ -127,7 +127,7 @@ def _solve_active(prob: Problem, opts: Options, starts=None):
     off = _switch_off_fading(prob, best)
     theta = best.x if off is None else off
     before = None  # the last sub-circuit's problem and final curvature
-    woken = None
+    woken, tiny = None, False
     for _ in range(ACTIVE_ROUNDS):
         sub = without_links(spec, _switched_off(prob, theta))
         keep = [prob.layout.link_index[l.id] for l in sub.links]
@@ -150,8 +150,7 @@ def _solve_active(prob: Problem, opts: Options, starts=None):
         last, best = best, _outcome(prob, theta, part)
         if not np.isfinite(best.f) or best.status == FAILED:
             break
-        if woken is not None and not best.f < last.f - ACTIVE_GAIN * max(abs(last.f), F_FLOOR):
-            break  # the wake-up bought next to nothing: stop trading places
+        tiny = woken is not None and not best.f < last.f - ACTIVE_GAIN * max(abs(last.f), F_FLOOR)
         woken = _wake_silent(prob, best)
         if woken is None:
             active = set(l.id for l in sub.links)
@@ -166,10 +165,17 @@ def _solve_active(prob: Problem, opts: Options, starts=None):
         if woken is None:
             prob.silence_checked = (best.f, _tested_links(prob, best))
             break
+        if tiny:
+            # The last wake-up bought next to nothing and another one is on
+            # offer: stop trading places; the whole circuit settles it below
+            # (its polish tests the silent links at the design it returns).
+            break
         theta = woken
-    if np.isfinite(best.f) and best.status == CONVERGED and not best.grad_norm <= part.grad_norm * 1.01 + opts.gtol:
-        # The whole circuit's gradient is larger than the sub-circuit's: a
-        # switched-off link pulls after all. Carry on there.
+    pulls = not best.grad_norm <= part.grad_norm * 1.01 + opts.gtol
+    if np.isfinite(best.f) and best.status == CONVERGED and (pulls or tiny):
+        # The whole circuit's gradient is larger than the sub-circuit's (a
+        # switched-off link pulls after all), or the rounds stopped trading
+        # places: carry on in the whole circuit.
         more, used = _polish(prob, best.x, opts, opts.max_iter)
         iterations += used
         best = more if more.f <= best.f else best
