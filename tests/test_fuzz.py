@@ -44,8 +44,9 @@ from hypothesis import strategies as st
 
 from hierarchy.cli import main
 from hierarchy.errors import HierarchyError
-from hierarchy.loop.gains import gain_shapes
 from hierarchy.spec import parse_spec
+
+from helpers import random_gains
 
 # ---------------------------------------------------------------------------
 # Running one case
@@ -580,31 +581,6 @@ def mutated_texts(draw):
 # ---------------------------------------------------------------------------
 # Gains files
 
-def random_gains(spec, rng, scale=0.5, radius=0.8) -> dict:
-    """Random gains in the file layout, with the area block of the loop at
-    spectral radius about ``radius`` (each entry carries one M or K factor)."""
-    from hierarchy.loop.closedloop import Layout, assemble
-    from hierarchy.loop.evaluate import spectral_radius
-    from hierarchy.loop.gains import Gains, with_pins
-
-    shapes = gain_shapes(spec)
-    g = Gains()
-    for name, blocks in shapes["areas"].items():
-        g.areas[name] = {k: scale * rng.normal(size=s) / math.sqrt(s[1]) for k, s in blocks.items()}
-    for lid, blocks in shapes["links"].items():
-        g.links[lid] = {k: scale * rng.normal(size=s) / math.sqrt(s[1]) for k, s in blocks.items()}
-    lay = Layout(spec)
-    full = with_pins(spec, g)
-    r = spectral_radius(assemble(lay, full).Phi[lay.nx:, lay.nx:])
-    if r > 0:
-        for blocks in g.areas.values():
-            blocks["M"] *= radius / r
-        for blocks in g.links.values():
-            if "K" in blocks:
-                blocks["K"] *= radius / r
-    return {"format": "hierarchy-gains", "version": 1, **g.to_dict()}
-
-
 GAINS_NASTY = st.one_of(
     NASTY,
     st.sampled_from([[[1e200]], [[-1e300]], [[1.5]], [[10.0]], [[1, 2], [3]], [[[1.0]]],
@@ -623,7 +599,8 @@ def gains_cases(draw):
         return text, json.dumps({"areas": {}, "links": {}}), "spec refused"
     seed = draw(st.integers(0, 2**32 - 1))
     radius = draw(st.sampled_from([0.5, 0.8, 0.99, 1.2]))
-    gains = random_gains(spec, np.random.default_rng(seed), radius=radius)
+    gains = {"format": "hierarchy-gains", "version": 1,
+             **random_gains(spec, seed, scale=0.5, radius=radius).to_dict()}
     kind = draw(st.sampled_from(["valid", "valid", "replace", "delete", "unknown", "raw-text",
                                  "non-finite-literal", "version", "wrong-top"]))
     if kind == "valid":
