@@ -17,13 +17,13 @@ import os
 import re
 import sys
 import stat
-import time
 import warnings
 from pathlib import Path
 
 import numpy as np
 import pytest
 import scipy.linalg as sla
+import yaml
 
 import hierarchy
 import hierarchy.io as hio
@@ -35,7 +35,8 @@ from error_catalogue import catalogue_entries, message_templates  # noqa: E402
 from hierarchy.loop.evaluate import evaluate
 from hierarchy.loop.gains import load_gains
 from hierarchy.report.results import fmt
-from hierarchy.spec import parse_spec
+from hierarchy.spec import parse_spec, yamlfile
+from helpers import count_calls
 
 ROOT = Path(__file__).resolve().parents[1]
 PACKAGE = ROOT / "hierarchy"
@@ -570,10 +571,15 @@ def test_alias_bomb_is_refused_quickly(tmp_path):
     lines += [f"a{i}: &a{i} [" + ", ".join([f"*a{i-1}"] * 10) + "]" for i in range(1, 10)]
     spec = tmp_path / "bomb.yaml"
     spec.write_text("\n".join(lines) + "\n")
-    start = time.perf_counter()
-    status, out, err = cli("check", spec)
-    assert time.perf_counter() - start < 2.0
+    # Counted, not timed: the size check visits each alias edge once (no more
+    # calls than the composer's, one per node or alias in the file) and no
+    # Python object of the 10^10-node tree is ever built.
+    with count_calls((yamlfile, "size"), (yaml.composer, "compose_node"),
+                     (yaml.constructor, "construct_document")) as calls:
+        status, out, err = cli("check", spec)
     assert status == 2 and "more than 1,000,000 YAML nodes" in one_error(err)
+    assert 0 < calls["size"] <= calls["compose_node"] < 200
+    assert calls["construct_document"] == 0
 
 
 @pytest.mark.parametrize("name", ["../escape.json", "/etc/passwd", "a/b.json", "..", ".", "",
@@ -726,11 +732,16 @@ def test_high_snr_designs_converge_to_the_closed_form(s2, N, price):
 @pytest.mark.parametrize("s2,N,price", [(1e6, 1e-6, 1e-6), (1e9, 1e-9, 1e-6)])
 def test_extreme_snr_designs_say_they_did_not_converge(s2, N, price):
     # An SNR of 1e9 and more per link: too ill-conditioned for the solver within
-    # its budget; what counts is that it does not call the result optimal.
+    # its budget (measured: both end at the iteration limit, 84% and 1800 times
+    # above the closed form). What counts is that it says so and still returns
+    # its best design, which the closed-form optimum bounds from below. (A
+    # solver that learns to reach these optima fails here: then assert the
+    # closed form instead, as the test above does.)
     J, _ = uncoded_priced_optimum(s2, N, price)
     res = design_prices(uncoded(s2, N, price=price), OPTS)
     assert_honest(res)
-    assert res.status == "converged" and res.objective == pytest.approx(J, rel=1e-6) or res.status != "converged"
+    assert res.status == "iteration limit", (res.status, res.objective, J)
+    assert res.objective > J * (1 + 1e-6)
 
 
 @pytest.mark.slow
