@@ -9,6 +9,14 @@ import sys
 
 from hierarchy.errors import HierarchyError, InputError
 
+__all__ = [
+    "EXIT_USAGE", "EXIT_FAILED", "NUMERIC_COMMANDS", "PROGRESS_SECONDS", "cmd_check",
+    "cmd_evaluate", "cmd_simulate", "cmd_design", "cmd_render", "cmd_report", "cmd_explain",
+    "cmd_sweep", "cmd_phase", "cmd_compare", "cmd_generate", "cmd_fit_world", "cmd_import_graph",
+    "build_parser", "MAX_WORKERS", "MAX_RESTARTS", "MAX_ITER", "MAX_SEED", "MAX_CHAINS",
+    "MAX_STEPS", "MAX_CHAIN_STEPS", "MAX_VALUE", "main",
+]
+
 EXIT_USAGE = 2
 #: A command that could not finish (a failed design, memory ran out).
 EXIT_FAILED = 1

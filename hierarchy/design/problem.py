@@ -19,6 +19,8 @@ from hierarchy.loop.evaluate import area_radius, flat_cost_and_gradient
 from hierarchy.loop.gains import Gains, gain_shapes, pinned_gains
 from hierarchy.spec.model import PREDICTION, Spec
 
+__all__ = ["EVALUATIONS", "Problem"]
+
 #: Evaluations made by every :class:`Problem` of this process, for progress
 #: reports from another thread (see ``hierarchy.cli``); only ever increased.
 EVALUATIONS = [0]

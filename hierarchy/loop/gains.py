@@ -25,6 +25,12 @@ from hierarchy.errors import GainsError
 from hierarchy.io import atomic_write_text
 from hierarchy.spec.model import PREDICTION, RESIDUAL, Spec
 
+__all__ = [
+    "GAINS_FORMAT", "GAINS_VERSION", "MAX_GAIN", "MAX_GAINS_FILE", "paired_prediction",
+    "gain_shapes", "Gains", "pinned_gains", "with_pins", "missing_gains", "check_gains",
+    "gains_from_dict", "load_gains", "save_gains",
+]
+
 GAINS_FORMAT = "hierarchy-gains"
 GAINS_VERSION = 1
 #: Largest gain entry accepted (in size). Products of a few gains must stay

@@ -29,6 +29,11 @@ from hierarchy.loop.evaluate import Scores, check_stable
 from hierarchy.loop.gains import Gains, check_gains, with_pins
 from hierarchy.spec.model import Spec
 
+__all__ = [
+    "BLOCK_STEPS", "BLOCK_FLOATS", "BURN_IN_DECAY", "BATCH_CORRELATION_TIMES", "Estimate",
+    "Simulation", "ComparisonRow", "noise_factor", "default_burn_in", "simulate", "compare",
+]
+
 #: Steps drawn per block: noises for a whole block are drawn at once and all
 #: outputs of a block are computed with a few matrix products.
 BLOCK_STEPS = 1000

@@ -59,6 +59,14 @@ import os
 from hierarchy.errors import InputError
 from hierarchy.spec.model import PREDICTION, RESIDUAL
 
+__all__ = [
+    "FORMATS", "RESIDUAL_COLOUR", "PREDICTION_COLOUR", "SILENT_COLOUR", "RESIDUAL_STYLE",
+    "PREDICTION_DASHES", "SILENT_DASHES", "SENSOR_FILL", "MIN_WIDTH", "MAX_WIDTH", "SILENT_WIDTH",
+    "MAX_DRAWN_AREAS", "MAX_TITLE_BUDGETS", "MAX_LINK_LABELS", "VIEWS", "MAX_RESULT_FILE",
+    "read_result", "result_graph", "crossings", "draw_circuit", "draw_matrix", "draw",
+    "check_path", "save_circuit",
+]
+
 #: Output formats by file extension.
 FORMATS = {".png": "png", ".svg": "svg", ".pdf": "pdf"}
 

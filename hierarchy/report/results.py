@@ -11,6 +11,12 @@ import numpy as np
 
 from hierarchy.io import atomic_write_text
 
+__all__ = [
+    "RESULT_FORMAT", "RESULT_VERSION", "through_gain", "scores_to_dict", "physical_text",
+    "result_to_dict", "write_json", "fmt", "table", "scores_text", "budget_terms", "result_text",
+    "floor_text", "EXPLAIN_HINT", "EXPLANATIONS", "explain_text",
+]
+
 RESULT_FORMAT = "hierarchy-result"
 RESULT_VERSION = 1
 
