@@ -75,6 +75,7 @@ def read_bytes(path, limit: int) -> bytes:
     Traceback (most recent call last):
     ...
     hierarchy.io.ReadRefused: this is a character device, not a regular file
+    >>> os.unlink(fh.name)
     """
     path = os.fspath(path)
     try:

@@ -17,7 +17,7 @@ Conventions shared by every figure:
 
 Examples
 --------
->>> from hierarchy import plots
+>>> from hierarchy.report import plots
 >>> fig = plots.sweep_figure(study, ["links[a->s].power"])     # doctest: +SKIP
 >>> plots.save_figure(fig, "sweep.png")                          # doctest: +SKIP
 """
