@@ -36,12 +36,14 @@ Labels
     The strongest links (up to :data:`MAX_LINK_LABELS`) are labelled with
     their power ``P``, SNR and rate in bits per step, each at the first spot
     along its curve where the label touches no other text and no box. The
-    other live links, and those whose label finds no such spot, are listed, strongest first, in a table beside the drawing. Silent links
-    are not labelled (the legend counts them; the reasons are in the result
-    and in ``hierarchy report``).
+    other live links, and those whose label finds no such spot, are listed,
+    strongest first, in a table beside the drawing. Silent links are not
+    labelled (the legend counts them; the reasons are in the result and in
+    ``hierarchy report``).
 Title
     The spec's name, the design's status (converged, iteration limit, failed)
     and its objective; budgets with their use and shadow price below.
+
 Colours are shared with every study figure (:mod:`hierarchy.report.plots`).
 
 matplotlib is imported only inside the functions that draw (the Agg canvas,
