@@ -79,7 +79,7 @@ def one_error(err: str) -> str:
 
 
 def kalman(a, q, r, lag=0):
-    """One state, one sensor, one area, ideal wires both ways (model.md's
+    """One state, one sensor, one area, ideal wires both ways (docs/model.md's
     Kalman limit: no prices, no link noise)."""
     return parse_spec(f"""
 spec: 1
@@ -99,7 +99,7 @@ def riccati(a, q, r):
 
 def uncoded(s2, N, price=None, budget=None):
     """A memoryless Gaussian source (A = 0), a perfect sensor and one noisy link,
-    lag 1 (model.md's uncoded-transmission limit)."""
+    lag 1 (docs/model.md's uncoded-transmission limit)."""
     cost = f", price: {price}" if price is not None else ""
     text = f"""
 spec: 1
@@ -151,7 +151,7 @@ def test_kalman_limit_at_every_scale(c):
 
 @pytest.mark.parametrize("c", SCALES)
 def test_scale_law_noise_times_price(c):
-    # model.md's scale law: noise x c and price / c leave the optimal objective
+    # docs/model.md's scale law: noise x c and price / c leave the optimal objective
     # unchanged and multiply the optimal power by c.
     J, P = uncoded_priced_optimum(1.0, c, 0.1 / c)
     res = design_prices(uncoded(1.0, c, price=0.1 / c), OPTS)

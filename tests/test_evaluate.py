@@ -101,7 +101,7 @@ links:
 
 
 def hand_scores(l1, l2):
-    """The same circuit written out by hand from model.md's equations, its
+    """The same circuit written out by hand from docs/model.md's equations, its
     stationary covariance found by iterating the covariance recursion (no
     Lyapunov solver, no project code)."""
     Ml, Mh, S1, P1, K1, G1, S2, P2, K3, G2, K2 = 0.4, 0.8, 1.1, 0.9, 0.6, 0.7, 0.8, 1.2, 0.5, 0.6, 0.3

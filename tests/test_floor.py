@@ -57,7 +57,7 @@ links:
 
 
 # ---------------------------------------------------------------------------
-# scalar sequential rate-distortion (model.md 'Information floor'; Tanaka,
+# scalar sequential rate-distortion (docs/model.md 'Information floor'; Tanaka,
 # Kim, Parrilo & Mitter, IEEE TAC 2017, scalar case): R(D) = 1/2 log2(a^2 + q/D),
 # attained over a noise-N channel with P = N (a^2 + q/D - 1).
 
@@ -110,7 +110,7 @@ def test_errors_below_the_sensor_floor_are_infeasible_not_a_number():
 
 def test_designed_single_loop_meets_the_bound():
     # With a free noiseless prediction the circuit can send innovations, which
-    # attains R(D) (model.md); the designed optimum is never below the bound.
+    # attains R(D) (docs/model.md); the designed optimum is never below the bound.
     spec = ar1_spec(A, Q, N, price=0.05)
     floor = information_floor(spec)
     res = design(spec)

@@ -2,7 +2,7 @@
 send under every budget, a convex program solved with CVXPY (Clarabel).
 
 Every budget of a spec is a linear constraint on the design's powers
-(model.md, "Budgets"): ``sum_l w_gl P_l + sum_a v_ga E||z_a||^2 <= B_g``,
+(``docs/model.md``, "Budgets"): ``sum_l w_gl P_l + sum_a v_ga E||z_a||^2 <= B_g``,
 and a cap on one link is a row with a single entry. :func:`constraints`
 turns a spec's budgets into these rows.
 

@@ -1,6 +1,6 @@
 """The design variables: named gain blocks per link and per area.
 
-Which gains exist follows model.md:
+Which gains exist follows the model (``docs/model.md``):
 
 * area ``a``: ``M`` (d_a x d_a), how the area's state carries over;
 * prediction link ``a->b``: ``G`` (m x d_a), and ``K`` (d_b x m) when ``b`` is

@@ -6,7 +6,7 @@ for many steps in several independent chains and reports every per-area error,
 activity, per-link power and the objective as a mean with a confidence
 interval. :func:`compare` lines the exact numbers up against those intervals.
 
-Interval (model.md, "Monte-Carlo interval"): each chain starts from zero,
+Interval (``docs/model.md``, "Monte-Carlo interval"): each chain starts from zero,
 discards a burn-in, and splits its kept steps into ``batches`` contiguous
 batches of equal length. The ``chains * batches`` batch means are treated as
 independent, roughly normal draws of the stationary mean; the interval is the

@@ -85,7 +85,7 @@ def scores_to_dict(spec, scores, gains=None) -> dict:
     level = {n: lv for n, lv in build_graph(spec).nodes(data="level")}
     for lid, row in d["links"].items():
         link = spec.link(lid)
-        # model.md: a link's power is pinned down only when it is priced or budgeted.
+        # docs/model.md: a link's power is pinned down only when it is priced or budgeted.
         row["identifiable"] = bool(link.price > 0 or lid in budgeted)
         row["delay"] = link.delay
         if gains is not None:
