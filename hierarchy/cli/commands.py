@@ -222,8 +222,6 @@ def cmd_design(args) -> int:
 
 
 def cmd_render(args) -> int:
-    import os
-
     from hierarchy.report.drawing import read_result, save_circuit
 
     out = _render_output(args)
