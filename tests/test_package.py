@@ -62,3 +62,19 @@ def test_the_type_marker_is_shipped():
         tomllib = pytest.importorskip("tomli")
     data = tomllib.loads((ROOT / "pyproject.toml").read_text())
     assert "py.typed" in data["tool"]["setuptools"]["package-data"]["hierarchy"]
+
+
+def test_exported_names_stay_what_they_are_after_every_module_is_imported():
+    # A function named like a module of its package (`studies.sweep` in
+    # studies/sweep.py, `hierarchy.design` beside the design package) is
+    # replaced by the module when that module is first imported after the
+    # package; importing every module, as the doctest run does, must leave
+    # every exported name as it was.
+    import types
+
+    for name in modules():
+        importlib.import_module(name)
+    for name in modules():
+        module = importlib.import_module(name)
+        turned = [n for n in getattr(module, "__all__", ()) if isinstance(getattr(module, n), types.ModuleType)]
+        assert not turned, f"{name}: these exports are now modules: {turned}"

@@ -110,3 +110,11 @@ _WHERE = {
 __all__ = list(_WHERE)
 
 __getattr__, __dir__ = lazy_parts(__name__, _WHERE)
+
+# `sweep` and `compare` share their names with the parts that hold them.
+# Importing such a part after the package (as `pytest --doctest-modules` or
+# any `import hierarchy.studies.sweep` does) binds the package's name to the
+# part module, and `studies.sweep(...)` then fails; loaded here, first, the
+# names stay the functions.
+from hierarchy.studies.compare import compare  # noqa: E402
+from hierarchy.studies.sweep import sweep  # noqa: E402
