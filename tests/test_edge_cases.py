@@ -697,7 +697,8 @@ def test_every_error_message_is_in_the_catalogue():
     missing = {t: where for t, where in found.items() if t not in listed}
     assert not missing, (
         "messages raised in hierarchy/ but missing from docs/errors.md (add a heading "
-        "`#### ``message``` with ‹…› for the parts filled in, then its cause and fix):\n"
+        "`### ``message``` one level below its section, so the Sphinx build takes it, with "
+        "‹…› for the parts filled in, then its cause and fix):\n"
         + "\n".join(f"  {t}   ({', '.join(f'{f}:{n}' for f, n in w)})" for t, w in sorted(missing.items())))
     stale = sorted(t for t in listed if t not in found)
     assert not stale, "docs/errors.md lists messages no code raises:\n" + "\n".join(stale)
