@@ -16,6 +16,8 @@ from __future__ import annotations
 import contextlib
 import os
 
+__all__ = ["THREAD_VARIABLES", "single_thread"]
+
 #: Environment variables by which a user picks BLAS threads; if any is set, we
 #: leave the choice to them.
 THREAD_VARIABLES = ("OPENBLAS_NUM_THREADS", "OMP_NUM_THREADS", "MKL_NUM_THREADS", "BLIS_NUM_THREADS")

@@ -29,6 +29,12 @@ import tempfile
 
 from hierarchy.errors import InputError
 
+__all__ = [
+    "ReadRefused", "read_bytes", "read_text", "refuse_existing", "check_output", "atomic_writer",
+    "atomic_write_bytes", "atomic_write_text", "mark", "written_since", "safe_filename",
+    "path_inside",
+]
+
 _WRITTEN: list = []
 
 
@@ -69,6 +75,7 @@ def read_bytes(path, limit: int) -> bytes:
     Traceback (most recent call last):
     ...
     hierarchy.io.ReadRefused: this is a character device, not a regular file
+    >>> os.unlink(fh.name)
     """
     path = os.fspath(path)
     try:

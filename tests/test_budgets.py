@@ -17,7 +17,7 @@ OPTS = Options(restarts=2, max_iter=2000)
 def sources(variances, noises, prices=None):
     """Memoryless Gaussian sources (A = 0), noiseless sensors, one area and
     one link per source, lag 1: the error of source i is s_i N_i / (N_i + P_i)
-    (uncoded transmission over a Gaussian channel, model.md's limit)."""
+    (uncoded transmission over a Gaussian channel, docs/model.md's limit)."""
     k = len(variances)
     lines = ["spec: 1", "world:", "  states:"]
     lines += [f"    x{i}: {{dim: 1, dynamics: 0, noise: {v}}}" for i, v in enumerate(variances)]

@@ -108,12 +108,25 @@ def test_bad_spec_line_is_named(tmp_path):
     assert "spectral radius 1.2" in out.stderr
 
 
-def test_existing_output_survives_a_failed_run(tmp_path):
-    target = tmp_path / "scores.json"
+def test_an_output_is_kept_by_a_failed_run_and_replaced_whole_by_a_good_one(tmp_path):
+    target, notes = tmp_path / "scores.json", tmp_path / "notes.txt"
     target.write_text("precious")
+    notes.write_text("the user's own file beside the output")
     out = run("evaluate", "specs/single-loop.yaml", "--json", target)  # fails: no gains
     assert out.returncode == 2
     assert target.read_text() == "precious"
+    # The same command with gains gets to the write: the old file is replaced
+    # by the new result as a whole, and nothing else in the folder changes
+    # (no temporary file left beside it, the neighbour untouched).
+    out = run("evaluate", "specs/single-loop.yaml", "--gains", "specs/single-loop.gains.json",
+              "--json", target)
+    assert out.returncode == 0, out.stderr
+    assert f"wrote {target}" in out.stdout
+    spec = load_spec(ROOT / "specs/single-loop.yaml")
+    exact = evaluate(spec, load_gains(ROOT / "specs/single-loop.gains.json", spec))
+    assert json.loads(target.read_text())["objective"] == pytest.approx(exact.objective, rel=1e-12)
+    assert sorted(p.name for p in tmp_path.iterdir()) == ["notes.txt", "scores.json"]
+    assert notes.read_text() == "the user's own file beside the output"
 
 
 def test_main_returns_status_in_process(capsys):

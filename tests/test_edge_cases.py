@@ -17,13 +17,13 @@ import os
 import re
 import sys
 import stat
-import time
 import warnings
 from pathlib import Path
 
 import numpy as np
 import pytest
 import scipy.linalg as sla
+import yaml
 
 import hierarchy
 import hierarchy.io as hio
@@ -35,7 +35,8 @@ from error_catalogue import catalogue_entries, message_templates  # noqa: E402
 from hierarchy.loop.evaluate import evaluate
 from hierarchy.loop.gains import load_gains
 from hierarchy.report.results import fmt
-from hierarchy.spec import parse_spec
+from hierarchy.spec import parse_spec, yamlfile
+from helpers import count_calls
 
 ROOT = Path(__file__).resolve().parents[1]
 PACKAGE = ROOT / "hierarchy"
@@ -78,7 +79,7 @@ def one_error(err: str) -> str:
 
 
 def kalman(a, q, r, lag=0):
-    """One state, one sensor, one area, ideal wires both ways (model.md's
+    """One state, one sensor, one area, ideal wires both ways (docs/model.md's
     Kalman limit: no prices, no link noise)."""
     return parse_spec(f"""
 spec: 1
@@ -98,7 +99,7 @@ def riccati(a, q, r):
 
 def uncoded(s2, N, price=None, budget=None):
     """A memoryless Gaussian source (A = 0), a perfect sensor and one noisy link,
-    lag 1 (model.md's uncoded-transmission limit)."""
+    lag 1 (docs/model.md's uncoded-transmission limit)."""
     cost = f", price: {price}" if price is not None else ""
     text = f"""
 spec: 1
@@ -150,7 +151,7 @@ def test_kalman_limit_at_every_scale(c):
 
 @pytest.mark.parametrize("c", SCALES)
 def test_scale_law_noise_times_price(c):
-    # model.md's scale law: noise x c and price / c leave the optimal objective
+    # docs/model.md's scale law: noise x c and price / c leave the optimal objective
     # unchanged and multiply the optimal power by c.
     J, P = uncoded_priced_optimum(1.0, c, 0.1 / c)
     res = design_prices(uncoded(1.0, c, price=0.1 / c), OPTS)
@@ -570,10 +571,15 @@ def test_alias_bomb_is_refused_quickly(tmp_path):
     lines += [f"a{i}: &a{i} [" + ", ".join([f"*a{i-1}"] * 10) + "]" for i in range(1, 10)]
     spec = tmp_path / "bomb.yaml"
     spec.write_text("\n".join(lines) + "\n")
-    start = time.perf_counter()
-    status, out, err = cli("check", spec)
-    assert time.perf_counter() - start < 2.0
+    # Counted, not timed: the size check visits each alias edge once (no more
+    # calls than the composer's, one per node or alias in the file) and no
+    # Python object of the 10^10-node tree is ever built.
+    with count_calls((yamlfile, "size"), (yaml.composer, "compose_node"),
+                     (yaml.constructor, "construct_document")) as calls:
+        status, out, err = cli("check", spec)
     assert status == 2 and "more than 1,000,000 YAML nodes" in one_error(err)
+    assert 0 < calls["size"] <= calls["compose_node"] < 200
+    assert calls["construct_document"] == 0
 
 
 @pytest.mark.parametrize("name", ["../escape.json", "/etc/passwd", "a/b.json", "..", ".", "",
@@ -691,7 +697,8 @@ def test_every_error_message_is_in_the_catalogue():
     missing = {t: where for t, where in found.items() if t not in listed}
     assert not missing, (
         "messages raised in hierarchy/ but missing from docs/errors.md (add a heading "
-        "`#### ``message``` with ‹…› for the parts filled in, then its cause and fix):\n"
+        "`### ``message``` one level below its section, so the Sphinx build takes it, with "
+        "‹…› for the parts filled in, then its cause and fix):\n"
         + "\n".join(f"  {t}   ({', '.join(f'{f}:{n}' for f, n in w)})" for t, w in sorted(missing.items())))
     stale = sorted(t for t in listed if t not in found)
     assert not stale, "docs/errors.md lists messages no code raises:\n" + "\n".join(stale)
@@ -726,11 +733,16 @@ def test_high_snr_designs_converge_to_the_closed_form(s2, N, price):
 @pytest.mark.parametrize("s2,N,price", [(1e6, 1e-6, 1e-6), (1e9, 1e-9, 1e-6)])
 def test_extreme_snr_designs_say_they_did_not_converge(s2, N, price):
     # An SNR of 1e9 and more per link: too ill-conditioned for the solver within
-    # its budget; what counts is that it does not call the result optimal.
+    # its budget (measured: both end at the iteration limit, 84% and 1800 times
+    # above the closed form). What counts is that it says so and still returns
+    # its best design, which the closed-form optimum bounds from below. (A
+    # solver that learns to reach these optima fails here: then assert the
+    # closed form instead, as the test above does.)
     J, _ = uncoded_priced_optimum(s2, N, price)
     res = design_prices(uncoded(s2, N, price=price), OPTS)
     assert_honest(res)
-    assert res.status == "converged" and res.objective == pytest.approx(J, rel=1e-6) or res.status != "converged"
+    assert res.status == "iteration limit", (res.status, res.objective, J)
+    assert res.objective > J * (1 + 1e-6)
 
 
 @pytest.mark.slow

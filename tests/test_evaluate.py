@@ -9,8 +9,10 @@ import scipy.linalg as sla
 from hierarchy.loop.closedloop import Layout
 from hierarchy.errors import GainsError, UnstableError
 from hierarchy.loop.evaluate import cost_and_gradient, evaluate, score
-from hierarchy.loop.gains import Gains, gain_shapes, load_gains, save_gains
+from hierarchy.loop.gains import Gains, load_gains, save_gains
 from hierarchy.spec import parse_spec
+
+from helpers import random_gains
 
 A = np.array([[0.9, 0.2], [0.0, 0.7]])
 Q = np.diag([0.1, 0.2])
@@ -62,10 +64,7 @@ def test_kalman_circuit_scores_riccati_covariance(lag):
 def test_gradient_matches_finite_differences():
     spec = parse_spec(TWO_LEVEL.format(l1=1, l2=2))
     lay = Layout(spec)
-    rng = np.random.default_rng(3)
-    shapes = gain_shapes(spec)
-    g = Gains({a: {k: 0.3 * rng.standard_normal(s) for k, s in b.items()} for a, b in shapes["areas"].items()},
-              {a: {k: 0.3 * rng.standard_normal(s) for k, s in b.items()} for a, b in shapes["links"].items()})
+    g = random_gains(spec, 3, scale=0.3, radius=None, per_column=False)
     J, grad, radius = cost_and_gradient(lay, g)
     assert radius < 1
     assert J == pytest.approx(score(lay, g).objective, rel=1e-12)
@@ -102,7 +101,7 @@ links:
 
 
 def hand_scores(l1, l2):
-    """The same circuit written out by hand from model.md's equations, its
+    """The same circuit written out by hand from docs/model.md's equations, its
     stationary covariance found by iterating the covariance recursion (no
     Lyapunov solver, no project code)."""
     Ml, Mh, S1, P1, K1, G1, S2, P2, K3, G2, K2 = 0.4, 0.8, 1.1, 0.9, 0.6, 0.7, 0.8, 1.2, 0.5, 0.6, 0.3

@@ -24,9 +24,10 @@ from hierarchy.design.floor import (
     least_error,
     link_capacity,
 )
-from hierarchy.loop.gains import Gains, gain_shapes
 from hierarchy.spec.generate import generate_spec_text
 from hierarchy.spec import load_spec, parse_spec
+
+from helpers import random_gains
 
 SPECS = sorted(Path(__file__).resolve().parent.parent.joinpath("specs").glob("*.yaml"))
 FAST = Options(restarts=3, max_iter=2000)
@@ -56,7 +57,7 @@ links:
 
 
 # ---------------------------------------------------------------------------
-# scalar sequential rate-distortion (model.md 'Information floor'; Tanaka,
+# scalar sequential rate-distortion (docs/model.md 'Information floor'; Tanaka,
 # Kim, Parrilo & Mitter, IEEE TAC 2017, scalar case): R(D) = 1/2 log2(a^2 + q/D),
 # attained over a noise-N channel with P = N (a^2 + q/D - 1).
 
@@ -109,7 +110,7 @@ def test_errors_below_the_sensor_floor_are_infeasible_not_a_number():
 
 def test_designed_single_loop_meets_the_bound():
     # With a free noiseless prediction the circuit can send innovations, which
-    # attains R(D) (model.md); the designed optimum is never below the bound.
+    # attains R(D) (docs/model.md); the designed optimum is never below the bound.
     spec = ar1_spec(A, Q, N, price=0.05)
     floor = information_floor(spec)
     res = design(spec)
@@ -381,34 +382,6 @@ def test_the_design_command_prints_and_writes_the_floor(tmp_path, capsys):
     assert main(["design", str(SPECS[0]), "--json", str(out), "--restarts", "1", "--no-floor"]) == 0
     assert "information floor" not in capsys.readouterr().out
     assert "floor" not in json.loads(out.read_text())
-
-
-def random_gains(spec, rng, radius=0.8):
-    """Random gains with the areas' block of the closed loop at spectral radius
-    about ``radius`` (scaled after drawing)."""
-    from hierarchy.loop.closedloop import Layout, assemble
-    from hierarchy.loop.evaluate import spectral_radius
-    from hierarchy.loop.gains import with_pins
-
-    shapes = gain_shapes(spec)
-    g = Gains()
-    for name, blocks in shapes["areas"].items():
-        g.areas[name] = {k: rng.normal(size=s) / math.sqrt(s[1]) for k, s in blocks.items()}
-    for lid, blocks in shapes["links"].items():
-        g.links[lid] = {k: rng.normal(size=s) / math.sqrt(s[1]) for k, s in blocks.items()}
-    lay = Layout(spec)
-    # Scaling every M and K scales the area block's radius exactly, except on
-    # delayed links, whose copies carry fixed entries: there, repeat.
-    for k in range(30):
-        r = spectral_radius(assemble(lay, with_pins(spec, g)).Phi[lay.nx:, lay.nx:])
-        if k and r <= radius * (1 + 1e-6):
-            break
-        for blocks in g.areas.values():
-            blocks["M"] *= radius / max(r, 1e-9)
-        for blocks in g.links.values():
-            if "K" in blocks:
-                blocks["K"] *= radius / max(r, 1e-9)
-    return g
 
 
 @pytest.mark.parametrize("path", SPECS, ids=lambda p: p.stem)

@@ -1,6 +1,6 @@
 """Grouped value paths (several places set at once) and comparisons over prices.
 
-The outside check is the scale law of the model brief (design/model.md, "Scale
+The outside check is the scale law of the model brief (docs/model.md, "Scale
 law"; it follows from the gauge of a link: scaling a link's channel noise by c
 and its price by 1/c leaves the optimal objective unchanged and scales the
 link's optimal power by c): a grouped sweep of every price must agree with a

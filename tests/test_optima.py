@@ -1,7 +1,7 @@
 """Trustworthy optima: the designer escapes the known traps, keeps the
 sub-circuit invariant, and claims no more than it checked.
 
-The traps are the exactly stationary saddles of the bilinear gains (model.md,
+The traps are the exactly stationary saddles of the bilinear gains (docs/model.md,
 "Solver hazards"): a link with sender and receiver at zero, and a stream of
 such links that pays only with all of them on."""
 
@@ -83,7 +83,7 @@ def test_a_silent_stream_wakes_only_as_a_whole(hops, monkeypatch):
 @settings(max_examples=6, deadline=None, suppress_health_check=[HealthCheck.too_slow])
 @given(areas=st.integers(2, 4), density=st.sampled_from([0.4, 0.8]), seed=st.integers(0, 50))
 def test_sub_circuit_invariant_on_generated_circuits(areas, density, seed):
-    # model.md, "sub-circuit invariant": silencing the extra links of a
+    # docs/model.md, "sub-circuit invariant": silencing the extra links of a
     # larger circuit gives the smaller one's design with the same scores.
     big = parse_spec(generate_spec_text(areas=areas, levels=2, density=density, seed=seed))
     small = without_predictions(big)
@@ -179,7 +179,7 @@ def test_a_tight_budget_still_wakes_the_stream_that_pays():
 @pytest.mark.parametrize("path, lid", [("two-level", "probe->station-view"),
                                        ("compare-predictive", "deck-view->tilt")])
 def test_a_narrowed_link_is_a_sub_circuit(path, lid):
-    # model.md, "sub-circuit invariant", for a link sending on fewer channels:
+    # docs/model.md, "sub-circuit invariant", for a link sending on fewer channels:
     # any design of the narrow circuit (here random stable starts) is a design
     # of the wide one with the same scores, predictions included (the residual
     # that subtracts a narrowed prediction reads it through U').

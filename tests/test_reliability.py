@@ -417,9 +417,9 @@ def test_memory_estimate_is_an_upper_bound_of_a_real_evaluation():
 
 
 def test_progress_lines_for_a_long_design(monkeypatch):
-    from hierarchy import cli as cli_module
+    from hierarchy.cli import commands
 
-    monkeypatch.setattr(cli_module, "PROGRESS_SECONDS", 0.005)
+    monkeypatch.setattr(commands, "PROGRESS_SECONDS", 0.005)
     status, out, err = cli("design", SPECS / "two-level.yaml", "--progress", "--restarts", "2")
     assert status == 0
     lines = [l for l in err.splitlines() if l.startswith("design: ")]

@@ -8,8 +8,7 @@ import pytest
 
 from hierarchy.loop.closedloop import Layout, assemble
 from hierarchy.errors import InputError, UnstableError
-from hierarchy.loop.evaluate import evaluate, loop_radius, spectral_radius
-from hierarchy.loop.gains import Gains, gain_shapes
+from hierarchy.loop.evaluate import evaluate, loop_radius
 from hierarchy.spec.model import (
     PREDICTION,
     RESIDUAL,
@@ -23,6 +22,8 @@ from hierarchy.spec.model import (
     frozen_map,
 )
 from hierarchy.loop.simulate import Estimate, compare, noise_factor, simulate
+
+from helpers import random_gains
 
 fa = frozen_array
 
@@ -65,29 +66,6 @@ def two_level_spec(lags=(0, 2, 1)):
         Link("relay", "side", PREDICTION, 1, noise(1, 0.1), price=0.1),
     )
     return Spec("two-level", world, sensors, areas, links)
-
-
-def random_gains(spec, seed=1, area_radius=0.8):
-    """Random gains, with every M and K scaled so that the area block of the
-    closed loop has spectral radius ``area_radius`` (each entry of that block
-    carries exactly one M or K factor, so the scaling is exact)."""
-    rng = np.random.default_rng(seed)
-    shapes = gain_shapes(spec)
-    g = Gains()
-    for name, blocks in shapes["areas"].items():
-        g.areas[name] = {k: rng.normal(size=s) / math.sqrt(s[1]) for k, s in blocks.items()}
-    for lid, blocks in shapes["links"].items():
-        g.links[lid] = {k: rng.normal(size=s) / math.sqrt(s[1]) for k, s in blocks.items()}
-    lay = Layout(spec)
-    loop = assemble(lay, g)
-    r = spectral_radius(loop.Phi[lay.nx:, lay.nx:])
-    c = area_radius / r
-    for blocks in g.areas.values():
-        blocks["M"] *= c
-    for blocks in g.links.values():
-        if "K" in blocks:
-            blocks["K"] *= c
-    return g
 
 
 @pytest.fixture(scope="module")
@@ -153,7 +131,7 @@ def test_other_lags_agree(two_level):
 
 def test_unstable_loop_is_refused():
     spec = two_level_spec()
-    gains = random_gains(spec, area_radius=1.2)
+    gains = random_gains(spec, radius=1.2)
     with pytest.raises(UnstableError, match="unstable"):
         simulate(spec, gains, steps=1_000)
 

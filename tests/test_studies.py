@@ -313,7 +313,7 @@ def test_dask_cluster_gives_the_same_table_as_local_processes():
 
 
 def test_phase_map_finds_the_scale_law_boundary(tmp_path):
-    # model.md's scale law: price x noise decides whether the link is used, so
+    # docs/model.md's scale law: price x noise decides whether the link is used, so
     # on a log-log grid the silent set depends on price * noise only.
     spec = load_spec(ROOT / "specs" / "single-loop.yaml")
     xs = studies.grid(0.005, 0.5, 3, log=True)

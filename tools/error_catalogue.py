@@ -27,13 +27,16 @@ def message_templates(folder=None) -> dict:
     Returns
     -------
     dict
-        ``{template: [(file name, line), ...]}``.
+        ``{template: [(path inside the package, line), ...]}``.
     """
     import ast
     from pathlib import Path
 
     folder = Path(folder) if folder is not None else Path(__file__).resolve().parents[1] / "hierarchy"
-    sources = {p.name: ast.parse(p.read_text(encoding="utf-8")) for p in sorted(folder.rglob("*.py"))}
+    # Keyed by the path inside the package: file names repeat across
+    # subpackages (every __init__.py, spec/checks.py and cli/checks.py).
+    sources = {p.relative_to(folder).as_posix(): ast.parse(p.read_text(encoding="utf-8"))
+               for p in sorted(folder.rglob("*.py"))}
 
     def called(node):
         f = node.func

@@ -1,6 +1,6 @@
 """Optimal gains for a circuit: price form and budget form.
 
-Price form minimises ``J`` of model.md with a stability-keeping L-BFGS over
+Price form minimises ``J`` of the model (``docs/model.md``) with a stability-keeping L-BFGS over
 all free gain blocks, using the exact adjoint gradient (two Lyapunov solves
 per evaluation), from several deterministic starts. Budget form is a block
 coordinate descent: the same quasi-Newton on the Lagrangian at the prices

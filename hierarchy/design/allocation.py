@@ -2,7 +2,7 @@
 send under every budget, a convex program solved with CVXPY (Clarabel).
 
 Every budget of a spec is a linear constraint on the design's powers
-(model.md, "Budgets"): ``sum_l w_gl P_l + sum_a v_ga E||z_a||^2 <= B_g``,
+(``docs/model.md``, "Budgets"): ``sum_l w_gl P_l + sum_a v_ga E||z_a||^2 <= B_g``,
 and a cap on one link is a row with a single entry. :func:`constraints`
 turns a spec's budgets into these rows.
 
@@ -88,9 +88,22 @@ def constraints(spec) -> Constraints:
 
     Examples
     --------
-    >>> cons = constraints(spec)          # doctest: +SKIP
+    >>> from hierarchy.spec import parse_spec
+    >>> spec = parse_spec('''
+    ... spec: 1
+    ... world: {states: {x: {dynamics: 0.5, noise: 1}}}
+    ... sensors: {s: {observes: {x: 1}, noise: 0.1}}
+    ... areas: {a: {tracks: x}, b: {tracks: x}}
+    ... links:
+    ...   - {from: s, to: a, kind: residual, noise: 0.1}
+    ...   - {from: a, to: b, kind: residual, noise: 0.1}
+    ... budgets: [{name: total, links: all, total: 2, caps: {a->b: 0.5}}]
+    ... ''')
+    >>> cons = constraints(spec)
     >>> cons.names
     ('total', 'total: cap a->b')
+    >>> cons.W.tolist(), cons.totals.tolist()
+    ([[1.0, 1.0], [0.0, 1.0]], [2.0, 0.5])
     """
     index = {l.id: i for i, l in enumerate(spec.links)}
     areas = {a.name: i for i, a in enumerate(spec.areas)}

@@ -20,6 +20,8 @@ from hierarchy.loop.gains import Gains, gain_shapes, pinned_gains
 from hierarchy.memory import keep_freed_memory
 from hierarchy.spec.model import PREDICTION, Spec
 
+__all__ = ["EVALUATIONS", "SEARCH_MARGIN", "Problem"]
+
 #: The design search keeps the area block's spectral radius below
 #: ``1 - SEARCH_MARGIN``: closer to the edge the covariances grow like
 #: ``1 / (1 - radius)`` and a line search that walks an area there (a mode

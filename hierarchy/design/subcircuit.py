@@ -5,7 +5,7 @@ A circuit that holds every link of another (same world, sensors and areas,
 the extra links added) can always silence its extra links: a design of the
 smaller circuit, with the extra links' gains at zero, is a design of the
 larger one with exactly the same scores. So the larger circuit's optimum is
-never worse (model.md, "sub-circuit invariant"). The designer uses this as a
+never worse (``docs/model.md``, "Sub-circuit invariant"). The designer uses this as a
 start (the circuit with every prediction off) and studies use it so that an
 architecture never loses to one it contains.
 """

@@ -2,3 +2,5 @@
 sits (the layout), the assembled loop, its exact stationary scores and
 Monte-Carlo runs of it.
 """
+
+__all__ = []

@@ -1,6 +1,6 @@
 """The design variables: named gain blocks per link and per area.
 
-Which gains exist follows model.md:
+Which gains exist follows the model (``docs/model.md``):
 
 * area ``a``: ``M`` (d_a x d_a), how the area's state carries over;
 * prediction link ``a->b``: ``G`` (m x d_a), and ``K`` (d_b x m) when ``b`` is
@@ -24,6 +24,12 @@ import numpy as np
 from hierarchy.errors import GainsError
 from hierarchy.io import atomic_write_text
 from hierarchy.spec.model import PREDICTION, RESIDUAL, Spec
+
+__all__ = [
+    "GAINS_FORMAT", "GAINS_VERSION", "MAX_GAIN", "MAX_GAINS_FILE", "paired_prediction",
+    "gain_shapes", "Gains", "pinned_gains", "with_pins", "missing_gains", "check_gains",
+    "gains_from_dict", "load_gains", "save_gains",
+]
 
 GAINS_FORMAT = "hierarchy-gains"
 GAINS_VERSION = 1

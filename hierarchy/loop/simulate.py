@@ -6,7 +6,7 @@ for many steps in several independent chains and reports every per-area error,
 activity, per-link power and the objective as a mean with a confidence
 interval. :func:`compare` lines the exact numbers up against those intervals.
 
-Interval (model.md, "Monte-Carlo interval"): each chain starts from zero,
+Interval (``docs/model.md``, "Monte-Carlo interval"): each chain starts from zero,
 discards a burn-in, and splits its kept steps into ``batches`` contiguous
 batches of equal length. The ``chains * batches`` batch means are treated as
 independent, roughly normal draws of the stationary mean; the interval is the
@@ -28,6 +28,11 @@ from hierarchy.errors import InputError, UnstableError
 from hierarchy.loop.evaluate import Scores, check_stable
 from hierarchy.loop.gains import Gains, check_gains, with_pins
 from hierarchy.spec.model import Spec
+
+__all__ = [
+    "BLOCK_STEPS", "BLOCK_FLOATS", "BURN_IN_DECAY", "BATCH_CORRELATION_TIMES", "Estimate",
+    "Simulation", "ComparisonRow", "noise_factor", "default_burn_in", "simulate", "compare",
+]
 
 #: Steps drawn per block: noises for a whole block are drawn at once and all
 #: outputs of a block are computed with a few matrix products.

@@ -2,3 +2,5 @@
 designed circuits, pictures of studies and the HTML page of a design.
 Pictures import matplotlib inside the functions that draw.
 """
+
+__all__ = []

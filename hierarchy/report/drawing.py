@@ -36,12 +36,14 @@ Labels
     The strongest links (up to :data:`MAX_LINK_LABELS`) are labelled with
     their power ``P``, SNR and rate in bits per step, each at the first spot
     along its curve where the label touches no other text and no box. The
-    other live links, and those whose label finds no such spot, are listed, strongest first, in a table beside the drawing. Silent links
-    are not labelled (the legend counts them; the reasons are in the result
-    and in ``hierarchy report``).
+    other live links, and those whose label finds no such spot, are listed,
+    strongest first, in a table beside the drawing. Silent links are not
+    labelled (the legend counts them; the reasons are in the result and in
+    ``hierarchy report``).
 Title
     The spec's name, the design's status (converged, iteration limit, failed)
     and its objective; budgets with their use and shadow price below.
+
 Colours are shared with every study figure (:mod:`hierarchy.report.plots`).
 
 matplotlib is imported only inside the functions that draw (the Agg canvas,
@@ -52,395 +54,40 @@ plotting backend alone.
 from __future__ import annotations
 
 import io
-import json
 import math
 import os
 
 from hierarchy.errors import InputError
-from hierarchy.spec.model import PREDICTION, RESIDUAL
+from hierarchy.report.canvas import _axes_inches, _check_axes, _figure, _renderer
+from hierarchy.report.labels import MAX_TITLE_BUDGETS, _delay_text, _link_label, _node_label, _num, _title
+from hierarchy.report.layout import _PAIR_RAD, _layout, crossings
+from hierarchy.report.matrix import draw_matrix
+from hierarchy.report.resultdata import MAX_RESULT_FILE, _as_dict, read_result, result_graph
+from hierarchy.report.style import (
+    _FONT, _LINK_FONT, MAX_WIDTH, MIN_WIDTH, PREDICTION_COLOUR, PREDICTION_DASHES, RESIDUAL_COLOUR,
+    RESIDUAL_STYLE, SENSOR_FILL, SILENT_COLOUR, SILENT_DASHES, SILENT_WIDTH,
+)
+from hierarchy.spec.model import PREDICTION
+
+__all__ = [
+    "FORMATS", "RESIDUAL_COLOUR", "PREDICTION_COLOUR", "SILENT_COLOUR", "RESIDUAL_STYLE",
+    "PREDICTION_DASHES", "SILENT_DASHES", "SENSOR_FILL", "MIN_WIDTH", "MAX_WIDTH", "SILENT_WIDTH",
+    "MAX_DRAWN_AREAS", "MAX_TITLE_BUDGETS", "MAX_LINK_LABELS", "VIEWS", "MAX_RESULT_FILE",
+    "read_result", "result_graph", "crossings", "draw_circuit", "draw_matrix", "draw",
+    "check_path", "save_circuit",
+]
 
 #: Output formats by file extension.
 FORMATS = {".png": "png", ".svg": "svg", ".pdf": "pdf"}
 
-# Okabe & Ito (2008), "Color Universal Design": blue and vermillion are told
-# apart by every common kind of colour-blindness.
-RESIDUAL_COLOUR = "#0072B2"
-PREDICTION_COLOUR = "#D55E00"
-SILENT_COLOUR = "#999999"
-RESIDUAL_STYLE = "solid"
-PREDICTION_DASHES = (7.0, 3.0, 1.5, 3.0)  # dash-dot, in points at 1 pt width
-SILENT_DASHES = (3.0, 3.0)  # dashed
-SENSOR_FILL = "#E6E6E6"
-
-MIN_WIDTH = 1.0  # points, for a link that sends nothing
-MAX_WIDTH = 8.0  # points, for the largest power (or share) in the picture
-SILENT_WIDTH = 0.9
 #: ``view="auto"`` draws the layered circuit up to this many areas, the matrix above.
 MAX_DRAWN_AREAS = 24
-MAX_TITLE_BUDGETS = 4
 #: At most this many links are labelled on the drawing (strongest first);
 #: the others are listed in the table beside it.
 MAX_LINK_LABELS = 12
 VIEWS = ("auto", "circuit", "matrix")
 # Where along a link (fraction of its curve) a label may sit, best first.
 _LABEL_SPOTS = (0.5, 0.4, 0.6, 0.3, 0.7, 0.22, 0.78)
-#: A result file is refused above this size (bytes): a 5000-dim design
-#: writes a few megabytes.
-MAX_RESULT_FILE = 50_000_000
-
-_LEVEL_GAP = 2.6  # data units (inches at full size) between levels
-_NODE_GAP = 1.6  # between boxes on one level
-_BOX_HEIGHT = 0.62
-_FONT = 9.0
-_LINK_FONT = 7.0
-_PAIR_RAD = 0.28  # bow of each arrow of a prediction/residual pair
-
-
-# -- the result --------------------------------------------------------------
-
-
-def read_result(path) -> dict:
-    """Load a result JSON file (``hierarchy design --json``) and check its shape.
-
-    Raises
-    ------
-    InputError
-        The file is missing, is not JSON, or is not a hierarchy result.
-
-    Examples
-    --------
-    >>> data = read_result("design.json")    # doctest: +SKIP
-    >>> sorted(data["links"])                # doctest: +SKIP
-    ['probe->station-view', ...]
-    """
-    from hierarchy.io import ReadRefused, read_text
-
-    path = os.fspath(path)
-    try:
-        text = read_text(path, MAX_RESULT_FILE)
-    except ReadRefused as err:
-        if err.reason == "missing":
-            raise InputError("no such file", place=path, fix="give the path of a result written by "
-                             "`hierarchy design SPEC --json PATH`") from None
-        raise InputError(f"cannot read the file ({err})", place=path,
-                         fix="give a readable result JSON file") from None
-    except UnicodeDecodeError as err:
-        raise InputError(f"cannot read the file ({err})", place=path,
-                         fix="give a readable result JSON file") from None
-    try:
-        data = json.loads(text)
-    except json.JSONDecodeError as err:
-        raise InputError(f"not valid JSON (line {err.lineno}, column {err.colno}: {err.msg})", place=path,
-                         fix="give a result written by `hierarchy design SPEC --json PATH`") from None
-    except RecursionError:
-        raise InputError("the JSON is nested too deeply", place=path,
-                         fix="give a result written by `hierarchy design SPEC --json PATH`") from None
-    except ValueError as err:  # an integer of thousands of digits
-        raise InputError(f"a value cannot be read ({err})", place=path,
-                         fix="give a result written by `hierarchy design SPEC --json PATH`") from None
-    _check_result(data, path)
-    return data
-
-
-def _check_result(data, place) -> None:
-    fix = "give a result written by `hierarchy design SPEC --json PATH` (or `hierarchy evaluate --json`)"
-    if not isinstance(data, dict) or data.get("format") != "hierarchy-result":
-        if not isinstance(data, dict):
-            what = f"a JSON {type(data).__name__}, not an object"
-        elif "format" not in data:
-            what = "no 'format' key"
-        else:
-            what = f"format {data['format']!r}"
-        raise InputError(f"not a hierarchy result file ({what}; expected format 'hierarchy-result')",
-                         place=place, fix=fix)
-    for key in ("areas", "links"):
-        if not isinstance(data.get(key), dict):
-            raise InputError(f"the result has no '{key}' object", place=place, fix=fix)
-    for lid, row in data["links"].items():
-        ends = lid.split("->")
-        if len(ends) != 2 or not all(ends):
-            raise InputError(f"the link id '{lid}' is not of the form FROM->TO", place=f"{place}: links", fix=fix)
-        if not isinstance(row, dict) or row.get("kind") not in (PREDICTION, RESIDUAL):
-            raise InputError(f"link '{lid}' has no kind 'prediction' or 'residual'",
-                             place=f"{place}: links.{lid}", fix=fix)
-        power = row.get("power")
-        if not isinstance(power, (int, float)) or isinstance(power, bool) or not math.isfinite(power):
-            raise InputError(f"link '{lid}' has no finite power", place=f"{place}: links.{lid}.power", fix=fix)
-        for key in ("snr", "bits"):
-            _optional_number(row.get(key), f"{place}: links.{lid}.{key}", fix)
-        delay = row.get("delay", 1)
-        if not isinstance(delay, int) or isinstance(delay, bool) or delay < 1:
-            raise InputError(f"link '{lid}' has a delay that is not a whole number of steps (1 or more)",
-                             place=f"{place}: links.{lid}.delay", fix=fix)
-        if not isinstance(row.get("share_of_budget") or {}, dict):
-            raise InputError("the shares of budget are not an object", place=f"{place}: links.{lid}", fix=fix)
-        for b, share in (row.get("share_of_budget") or {}).items():
-            _optional_number(share, f"{place}: links.{lid}.share_of_budget.{b}", fix)
-    # What the title and the boxes print: numbers, text or nothing.
-    for name, area in data["areas"].items():
-        if not isinstance(area, dict):
-            raise InputError(f"area '{name}' is not an object", place=f"{place}: areas.{name}", fix=fix)
-        _optional_number(area.get("error"), f"{place}: areas.{name}.error", fix)
-    _optional_number(data.get("objective"), f"{place}: objective", fix)
-    for key in ("spec", "status", "form"):
-        if data.get(key) is not None and not isinstance(data[key], str):
-            raise InputError(f"the result's '{key}' is not text", place=f"{place}: {key}", fix=fix)
-    budgets = data.get("budgets") or {}
-    if not isinstance(budgets, dict) or not all(isinstance(r, dict) for r in budgets.values()):
-        raise InputError("the result's budgets are not an object of objects", place=f"{place}: budgets", fix=fix)
-    for b, row in budgets.items():
-        for key in ("used", "total", "shadow_price"):
-            _optional_number(row.get(key), f"{place}: budgets.{b}.{key}", fix)
-
-
-def _optional_number(value, place, fix) -> None:
-    """``None`` (shown as infinite) or a real number; anything else is refused."""
-    if value is not None and (isinstance(value, bool) or not isinstance(value, (int, float))
-                              or math.isnan(value)):
-        raise InputError(f"expected a number, got {type(value).__name__} {str(value)[:40]!r}", place=place,
-                         fix=fix)
-
-
-def _as_dict(result, spec):
-    """The result as its JSON dict, and the spec when one is known."""
-    if isinstance(result, dict):
-        _check_result(result, "result")
-        return result, spec
-    if hasattr(result, "to_dict") and hasattr(result, "spec"):  # DesignResult
-        return result.to_dict(), spec if spec is not None else result.spec
-    raise InputError(f"cannot draw a {type(result).__name__}", place="result",
-                     fix="pass a DesignResult or the dict of a result JSON file")
-
-
-def result_graph(data: dict, spec=None):
-    """The circuit's graph with levels, from a spec or from the result alone.
-
-    Without a spec, the areas are the keys of ``data["areas"]`` and every other
-    end of a link is a sensor; levels are the ones the result records for
-    its areas, and otherwise computed by :func:`hierarchy.circuit.levels`, as
-    ``hierarchy check`` does.
-
-    Examples
-    --------
-    >>> g = result_graph(read_result("design.json"))   # doctest: +SKIP
-    >>> g.nodes["probe"]["level"]                      # doctest: +SKIP
-    0
-    """
-    import networkx as nx
-
-    from hierarchy.graph import build_graph, levels
-
-    if spec is not None:
-        g = build_graph(spec)
-        missing = [f"link {lid}" for lid in data["links"] if not g.has_edge(*lid.split("->"))]
-        missing += [f"area {a}" for a in data["areas"] if a not in g or g.nodes[a]["role"] != "area"]
-        if missing:
-            raise InputError(f"the result does not fit the spec '{spec.name}', which has no "
-                             + ", ".join(missing),
-                             place="spec", fix="draw the result with the spec it was designed from, or with none")
-        return g
-    g = nx.DiGraph(name=data.get("spec", ""))
-    for name, row in data["areas"].items():
-        # A result written by this version carries each area's level; older
-        # ones fall back to the default rule, as `hierarchy check` applies it.
-        level = row.get("level") if isinstance(row, dict) else None
-        ok = isinstance(level, int) and not isinstance(level, bool) and level >= 1
-        g.add_node(name, role="area", given_level=level if ok else None)
-    for lid, row in data["links"].items():
-        u, v = lid.split("->")
-        for n in (u, v):
-            if n not in g:
-                g.add_node(n, role="sensor")
-        g.add_edge(u, v, id=lid, kind=row["kind"])
-    for node, level in levels(g).items():
-        g.nodes[node]["level"] = level
-    return g
-
-
-# -- text --------------------------------------------------------------------
-
-
-def _num(x, digits=3) -> str:
-    if x is None:
-        return "\u221e"  # written as null only when infinite (noiseless channel)
-    x = float(x)
-    if x == 0:
-        return "0"
-    if 1e-2 <= abs(x) < 1e4:
-        return f"{x:.{digits}g}"
-    return f"{x:.{max(digits - 1, 1)}e}".replace("e-0", "e-").replace("e+0", "e")
-
-
-def _si(value, unit) -> str:
-    """``8.2 nW``: a physical number with an SI prefix."""
-    if value is None:
-        return f"\u221e {unit}"
-    value = float(value)
-    if value == 0:
-        return f"0 {unit}"
-    for factor, prefix in ((1e9, "G"), (1e6, "M"), (1e3, "k"), (1.0, ""), (1e-3, "m"), (1e-6, "\u00b5"),
-                           (1e-9, "n"), (1e-12, "p"), (1e-15, "f")):
-        if abs(value) >= factor:
-            return f"{value / factor:.3g} {prefix}{unit}"
-    return f"{value:.2e} {unit}"
-
-
-def _physical_text(row, units) -> str:
-    """``120 spike/s, 8.2 nW`` for a result with physical units."""
-    phys = row.get("physical") if isinstance(row.get("physical"), dict) else None
-    if not isinstance(units, dict) or phys is None:
-        return ""
-    rate, watts = phys.get("events_per_second"), phys.get("watts")
-    if not all(v is None or isinstance(v, (int, float)) and not isinstance(v, bool) for v in (rate, watts)):
-        return ""
-    return f"{_num(rate)} {units.get('event') or 'event'}/s, {_si(watts, 'W')}"
-
-
-def _link_label(row, width_by, units=None) -> str:
-    lines = [f"P {_num(row['power'])}  SNR {_num(row.get('snr'))}",
-             f"{_num(row.get('bits'))} bit/step" + _delay_text(row)]
-    physical = _physical_text(row, units)
-    if physical:
-        lines.append(physical)
-    if width_by == "share":
-        shares = row.get("share_of_budget") or {}
-        lines += [", ".join(f"{100 * s:.0f}% of {b}" for b, s in shares.items() if s is not None)
-                  or "in no budget"]
-    return "\n".join(lines)
-
-
-def _delay_text(row) -> str:
-    """``, delay 3`` for a link that takes 3 steps; nothing for one step."""
-    delay = row.get("delay") or 1
-    return f", delay {delay}" if delay > 1 else ""
-
-
-def _node_label(name, role, area) -> str:
-    if role == "sensor":
-        return f"{name}\nsensor"
-    if area is None:
-        return name
-    if area.get("relay") or area.get("error") is None:
-        return f"{name}\nrelay"
-    return f"{name}\nerror {_num(area['error'])}"
-
-
-def _title(data) -> str:
-    name = data.get("spec") or "circuit"
-    bits = []
-    if data.get("status"):
-        bits.append(f"{data['status']}" + (f" ({data['form']} form)" if data.get("form") else ""))
-    else:
-        bits.append("exact scores")
-    if data.get("objective") is not None:
-        bits.append(f"objective {_num(data['objective'], 5)}")
-    lines = [name, ", ".join(bits)]
-    budgets = list((data.get("budgets") or {}).items())
-    # One line per budget, so that no line runs off a narrow picture.
-    for b, row in budgets[:MAX_TITLE_BUDGETS]:
-        lines.append(f"budget {b}: {_num(row.get('used'))} of {_num(row.get('total'))} used, "
-                     f"shadow price {_num(row.get('shadow_price'))}")
-    if len(budgets) > MAX_TITLE_BUDGETS:
-        lines.append(f"and {len(budgets) - MAX_TITLE_BUDGETS} more budgets (see the result's tables)")
-    units, total = data.get("units"), data.get("physical_total")
-    if isinstance(units, dict) and isinstance(total, dict):
-        watts = total.get("watts")
-        if watts is None or isinstance(watts, (int, float)) and not isinstance(watts, bool):
-            step = units.get("step_seconds")
-            lines.append(f"all links: {_si(watts, 'W')}" + (f", 1 step = {_si(step, 's')}"
-                                                            if isinstance(step, (int, float)) else ""))
-    return "\n".join(lines)
-
-
-# -- layout ------------------------------------------------------------------
-
-
-def _box_size(label, fontsize):
-    # Average glyph ~0.58 em wide; 72 points per inch and one data unit per inch.
-    chars = max(len(line) for line in label.split("\n"))
-    return max(1.25, 0.58 * fontsize / 72 * chars + 0.35), _BOX_HEIGHT
-
-
-def _rows(g):
-    """Nodes by row: their level, or one row above the top for unplaced areas."""
-    known = [d.get("level") for _, d in g.nodes(data=True) if d.get("level") is not None]
-    top = max(known, default=0)
-    rows = {}
-    for n, d in g.nodes(data=True):
-        level = d.get("level")
-        rows.setdefault(top + 1 if level is None else level, []).append(n)
-    return {k: rows[k] for k in sorted(rows)}, top
-
-
-def _centres(rows, size):
-    """x of every node when each row is centred, boxes _NODE_GAP apart."""
-    x = {}
-    for nodes in rows.values():
-        left = -(sum(size[n][0] for n in nodes) + _NODE_GAP * (len(nodes) - 1)) / 2
-        for n in nodes:
-            x[n] = left + size[n][0] / 2
-            left += size[n][0] + _NODE_GAP
-    return x
-
-
-def crossings(g, rows) -> int:
-    """Crossings between the links that join neighbouring rows (straight-line
-    count; links that skip rows are left out of the count).
-
-    Examples
-    --------
-    >>> import networkx as nx
-    >>> g = nx.DiGraph([("a", "d"), ("b", "c")])
-    >>> crossings(g, {0: ["a", "b"], 1: ["c", "d"]}), crossings(g, {0: ["a", "b"], 1: ["d", "c"]})
-    (1, 0)
-    """
-    import numpy as np
-
-    index = {n: (k, i) for k, nodes in rows.items() for i, n in enumerate(nodes)}
-    keys = list(rows)
-    total = 0
-    for lo, hi in zip(keys, keys[1:]):
-        pairs = {tuple(sorted((u, v), key=lambda n: index[n][0])) for u, v in g.edges
-                 if {index[u][0], index[v][0]} == {lo, hi}}
-        if len(pairs) < 2:
-            continue
-        a = np.array([index[p][1] for p, _ in pairs])
-        b = np.array([index[q][1] for _, q in pairs])
-        total += int(np.sum((a[:, None] < a[None, :]) & (b[:, None] > b[None, :])))
-    return total
-
-
-def _order_rows(g, rows, size, sweeps=8):
-    """Reorder each row to cut crossings: barycentre sweeps up and down
-    (Sugiyama, Tagawa & Toda 1981), keeping the best order seen."""
-    rows = {k: sorted(v, key=list(g.nodes).index) for k, v in rows.items()}
-    best, best_count = {k: list(v) for k, v in rows.items()}, crossings(g, rows)
-    keys = list(rows)
-    for sweep in range(sweeps):
-        order = keys[1:] if sweep % 2 == 0 else keys[-2::-1]
-        for k in order:
-            x = _centres(rows, size)
-            done = [j for j in keys if (j < k if sweep % 2 == 0 else j > k)]
-
-            def key(n, done=done, x=x, k=k):
-                near = [x[m] for m in set(g.predecessors(n)) | set(g.successors(n))
-                        if any(m in rows[j] for j in done)]
-                return sum(near) / len(near) if near else x[n]
-            rows[k] = sorted(rows[k], key=key)
-        count = crossings(g, rows)
-        if count < best_count:
-            best, best_count = {k: list(v) for k, v in rows.items()}, count
-    return best
-
-
-def _layout(g, labels):
-    """Rows by level (sensors bottom), ordered to cut crossings; centres and sizes."""
-    rows, top = _rows(g)
-    size = {n: _box_size(labels[n], _FONT) for n in g.nodes}
-    rows = _order_rows(g, rows, size)
-    x = _centres(rows, size)
-    pos = {n: (x[n], level * _LEVEL_GAP) for level, nodes in rows.items() for n in nodes}
-    return pos, size, rows, top
 
 
 # -- drawing -----------------------------------------------------------------
@@ -590,34 +237,6 @@ def _table_width(data, lids, font) -> float:
         return 0.0
     chars = max(len(lid) for lid in lids) + 32
     return 0.6 * font / 72 * max(chars, 40) + 0.3
-
-
-def _figure(width, height):
-    from matplotlib.backends.backend_agg import FigureCanvasAgg
-    from matplotlib.figure import Figure
-
-    fig = Figure(figsize=(width, height))
-    FigureCanvasAgg(fig)
-    return fig
-
-
-def _renderer(fig):
-    """The renderer that measures text on ``fig`` (Agg canvases have one;
-    other backends build one on request)."""
-    get = getattr(fig.canvas, "get_renderer", None)
-    return get() if get is not None else fig._get_renderer()
-
-
-def _axes_inches(ax):
-    """Width and height of an Axes, in inches."""
-    box = ax.get_position()
-    return box.width * ax.figure.get_figwidth(), box.height * ax.figure.get_figheight()
-
-
-def _check_axes(ax):
-    if ax is not None and not hasattr(ax, "add_patch"):
-        raise InputError(f"ax= takes one matplotlib Axes; got {ax!r}", place="ax",
-                         fix="pass an Axes, e.g. from fig, ax = matplotlib.pyplot.subplots()")
 
 
 def _silent_words(data) -> str:
@@ -828,149 +447,6 @@ def draw_circuit(result, spec=None, width_by="power", ax=None):
     target.hierarchy_nodes = boxes
     target.hierarchy_labels = placed
     target.hierarchy_table = left_out
-    return target
-
-
-def _node_order(g):
-    """Nodes by level, and within a level in the drawing's order."""
-    labels = {n: n for n in g.nodes}
-    size = {n: _box_size(labels[n], _FONT) for n in g.nodes}
-    rows, top = _rows(g)
-    return _order_rows(g, rows, size, sweeps=4), top
-
-
-def draw_matrix(result, spec=None, ax=None):
-    """Draw a designed circuit as a link-power matrix: the view that scales.
-
-    Rows are senders and columns receivers, both ordered by level (sensors
-    first) and within a level as in the layered drawing; thin lines separate
-    the levels, whose numbers are written on the right and at the top. A
-    residual's cell is blue and a prediction's vermillion (the colours of the
-    layered drawing and of every study figure), darker for more power on a
-    logarithmic scale; a silent link's cell is grey with a cross. Empty cells
-    have no link.
-
-    Parameters
-    ----------
-    result : DesignResult or dict
-        A design, or the dict of a result JSON file.
-    spec : Spec, optional
-        The spec the result was designed from (it only supplies the graph).
-    ax : matplotlib.axes.Axes, optional
-        Draw onto this Axes instead of a new figure (the two colour scales
-        take room below it).
-
-    Returns
-    -------
-    matplotlib.figure.Figure, or the given Axes
-        With ``hierarchy_cells`` (link id -> (row, column)) and
-        ``hierarchy_order`` (the node order of rows and columns).
-
-    Examples
-    --------
-    >>> fig = draw_matrix(read_result("design.json"))   # doctest: +SKIP
-    >>> fig.hierarchy_order[:2]                         # doctest: +SKIP
-    ['probe-1', 'probe-2']
-    """
-    import numpy as np
-    from matplotlib.colors import LinearSegmentedColormap, LogNorm, to_rgb
-    from matplotlib.ticker import NullFormatter
-
-    _check_axes(ax)
-    data, spec = _as_dict(result, spec)
-    g = result_graph(data, spec)
-    rows, top = _node_order(g)
-    order = [n for nodes in rows.values() for n in nodes]
-    index = {n: i for i, n in enumerate(order)}
-    n = len(order)
-    given = ax is not None
-    cell = min(0.32, max(0.11, 9.0 / n)) if not given else min(0.32, min(_axes_inches(ax)) / n)  # inches
-    font = min(8.0, cell * 72 * 0.78)
-    name_in = 0.6 * font / 72 * max(len(s) for s in order) + 0.15  # tick labels of node names
-    level_in = 0.6 * font / 72 * (9 if top + 1 in rows else len(f"L{top}")) + 0.2  # "unreached" or "L12"
-    side = n * cell
-    title = _title(data)
-    title_in = (title.count("\n") + 2) * 10 * 1.35 / 72 + 0.3
-    bar_in = 0.9  # the two colour scales and their labels
-    left = name_in + 0.45  # names, then the "sender" label
-    bottom = bar_in + name_in + 0.45
-    if given:
-        fig = ax.figure
-    else:
-        fig_w = max(left + side + level_in + 0.2, 6.0)
-        fig_h = bottom + side + level_in + title_in
-        fig = _figure(fig_w, fig_h)
-        ax = fig.add_axes([left / fig_w, bottom / fig_h, side / fig_w, side / fig_h])
-
-    live = [float(r["power"]) for r in data["links"].values() if not r.get("silent") and float(r["power"]) > 0]
-    hi = max(live, default=1.0)
-    lo = min(min(live, default=hi), hi / 10)
-    norm = LogNorm(vmin=lo, vmax=hi)
-    maps = {kind: LinearSegmentedColormap.from_list(kind, [(1, 1, 1), to_rgb(colour)])
-            for kind, colour in ((RESIDUAL, RESIDUAL_COLOUR), (PREDICTION, PREDICTION_COLOUR))}
-    image = np.ones((n, n, 3))
-    cells, silent_at = {}, []
-    for lid, row in data["links"].items():
-        u, v = lid.split("->")
-        i, j = index[u], index[v]
-        cells[lid] = (i, j)
-        if row.get("silent"):
-            image[i, j] = to_rgb("#D9D9D9")
-            silent_at.append((j, i))
-        else:
-            frac = float(norm(max(float(row["power"]), lo)))
-            image[i, j] = maps[row["kind"]](0.18 + 0.82 * frac)[:3]
-    ax.imshow(image, interpolation="nearest", aspect="equal", extent=(-0.5, n - 0.5, n - 0.5, -0.5))
-    if silent_at:
-        xs, ys = zip(*silent_at)
-        ax.plot(xs, ys, "x", color="#666666", ms=max(cell * 72 * 0.5, 2), mew=0.8, gid="silent-cells")
-    bounds = np.cumsum([len(nodes) for nodes in rows.values()])[:-1] - 0.5
-    for b in bounds:
-        ax.axhline(b, color="#444444", lw=0.8)
-        ax.axvline(b, color="#444444", lw=0.8)
-    ax.set_xticks(range(n), order, rotation=90, fontsize=font)
-    ax.set_yticks(range(n), order, fontsize=font)
-    ax.tick_params(length=0)
-    ax.set_xlim(-0.5, n - 0.5)
-    ax.set_ylim(n - 0.5, -0.5)
-    ax.set_xlabel("receiver", fontsize=9)
-    ax.set_ylabel("sender", fontsize=9)
-    # Level numbers: on the right (rows) and on top (columns), at each group's middle.
-    starts = np.concatenate([[-0.5], bounds, [n - 0.5]])
-    mids = (starts[:-1] + starts[1:]) / 2
-    names = ["unreached" if k > top else f"L{k}" for k in rows]
-    right = ax.secondary_yaxis("right")
-    right.set_yticks(mids, names, fontsize=font)
-    right.tick_params(length=0)
-    topx = ax.secondary_xaxis("top")
-    topx.set_xticks(mids, names, fontsize=font, rotation=90)
-    topx.tick_params(length=0)
-
-    # Two colour scales, one per kind, below the matrix.
-    from matplotlib.cm import ScalarMappable
-
-    for k, (kind, label) in enumerate(((RESIDUAL, "residual power (up)"), (PREDICTION, "prediction power (down)"))):
-        mappable = ScalarMappable(norm=norm, cmap=maps[kind])
-        if given:  # side by side below the names and the "receiver" label, outside the given Axes
-            below = -(name_in + 0.6) / _axes_inches(ax)[1]
-            cax = ax.inset_axes([0.55 * k, below, 0.45, 0.14 / _axes_inches(ax)[1]])
-            bar = fig.colorbar(mappable, cax=cax, orientation="horizontal")
-        else:
-            width = (fig_w - 1.6) / 2
-            cax = fig.add_axes([(0.5 + k * (width + 0.6)) / fig_w, 0.45 / fig_h, width / fig_w, 0.14 / fig_h])
-            bar = fig.colorbar(mappable, cax=cax, orientation="horizontal")
-        bar.set_label(label + ", model units", fontsize=8)
-        bar.ax.tick_params(labelsize=7)
-        bar.ax.xaxis.set_minor_formatter(NullFormatter())  # labelled minor ticks collide on a short scale
-    heading = title + "\nlink powers: row sends to column; grey x = silent"
-    if given:
-        ax.set_title(heading, fontsize=9, linespacing=1.35, gid="title", pad=level_in * 72)
-        target = ax
-    else:
-        fig.text(0.5, 1 - 0.12 / fig_h, heading, ha="center", va="top", fontsize=10, linespacing=1.35, gid="title")
-        target = fig
-    target.hierarchy_cells = cells
-    target.hierarchy_order = order
     return target
 
 

@@ -11,7 +11,7 @@ the result by ``hierarchy design --json``) and the tool versions.
 
 Examples
 --------
->>> from hierarchy.report import report_html
+>>> from hierarchy.report.page import report_html
 >>> page = report_html(read_result("design.json"))     # doctest: +SKIP
 >>> page.startswith("<!DOCTYPE html>")                  # doctest: +SKIP
 True

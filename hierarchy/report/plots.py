@@ -17,7 +17,7 @@ Conventions shared by every figure:
 
 Examples
 --------
->>> from hierarchy import plots
+>>> from hierarchy.report import plots
 >>> fig = plots.sweep_figure(study, ["links[a->s].power"])     # doctest: +SKIP
 >>> plots.save_figure(fig, "sweep.png")                          # doctest: +SKIP
 """
@@ -33,6 +33,13 @@ import numpy as np
 from hierarchy.errors import InputError
 
 from hierarchy.report.drawing import PREDICTION_COLOUR, RESIDUAL_COLOUR, SILENT_COLOUR
+
+__all__ = [
+    "KIND_COLOURS", "PALETTE", "FORMATS", "MAX_SHARED_LINKS", "MULTIPLE_COLUMNS", "MODEL_UNITS",
+    "check_plot_path", "figure_bytes", "save_figure", "default_show", "unit_label", "unit_of",
+    "check_log_y", "sweep_figure", "phase_figure", "compare_figure", "study_figure",
+    "save_study_plot",
+]
 
 #: Link kinds keep the colours of the circuit drawings in every figure.
 KIND_COLOURS = {"residual": RESIDUAL_COLOUR, "prediction": PREDICTION_COLOUR}

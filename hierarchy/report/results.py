@@ -11,6 +11,12 @@ import numpy as np
 
 from hierarchy.io import atomic_write_text
 
+__all__ = [
+    "RESULT_FORMAT", "RESULT_VERSION", "through_gain", "scores_to_dict", "physical_text",
+    "result_to_dict", "write_json", "fmt", "table", "scores_text", "budget_terms", "result_text",
+    "floor_text", "EXPLAIN_HINT", "EXPLANATIONS", "explain_text",
+]
+
 RESULT_FORMAT = "hierarchy-result"
 RESULT_VERSION = 1
 
@@ -79,7 +85,7 @@ def scores_to_dict(spec, scores, gains=None) -> dict:
     level = {n: lv for n, lv in build_graph(spec).nodes(data="level")}
     for lid, row in d["links"].items():
         link = spec.link(lid)
-        # model.md: a link's power is pinned down only when it is priced or budgeted.
+        # docs/model.md: a link's power is pinned down only when it is priced or budgeted.
         row["identifiable"] = bool(link.price > 0 or lid in budgeted)
         row["delay"] = link.delay
         if gains is not None:

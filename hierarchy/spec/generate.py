@@ -31,6 +31,8 @@ from hierarchy.errors import InputError
 from hierarchy.io import atomic_write_text
 from hierarchy.spec.rules import MAX_LAG, MAX_TOTAL_DIM
 
+__all__ = ["MAX_AREAS", "generate_spec_text", "write_spec"]
+
 #: Largest circuit the generator writes (the spec reader's own size limits
 #: would refuse much larger ones anyway).
 MAX_AREAS = 1000

@@ -81,6 +81,7 @@ def load_spec(path) -> Spec:
     ... ''')
     >>> load_spec(path).name
     'tiny'
+    >>> path.unlink(); path.parent.rmdir()
     """
     from hierarchy.io import ReadRefused, read_text
 

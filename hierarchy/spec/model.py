@@ -13,6 +13,11 @@ from typing import Mapping
 
 import numpy as np
 
+__all__ = [
+    "PREDICTION", "RESIDUAL", "LINK_KINDS", "frozen_array", "frozen_map", "StateBlock", "World",
+    "Sensor", "Area", "Link", "Budget", "Spec",
+]
+
 PREDICTION = "prediction"
 RESIDUAL = "residual"
 LINK_KINDS = (PREDICTION, RESIDUAL)

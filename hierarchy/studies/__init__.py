@@ -10,18 +10,18 @@ Three studies share one point runner and one scheduler:
 
 Values are addressed by a *path* on the typed spec (never by editing YAML):
 
-=============================  ==================================================
-path                           meaning of the number given
-=============================  ==================================================
-``links[FROM->TO].price``      the link's price per unit of power (>= 0)
-``links[FROM->TO].noise``      channel noise: the number times the identity
-``budgets[NAME].total``        the budget's total (>= 0)
-``areas[NAME].weight``         weight of the area's error (>= 0)
-``areas[NAME].activity_price`` price of the area's activity (>= 0)
-``sensors[NAME].noise``        sensor noise: the number times the identity
-``world.states[NAME].noise``   process noise of the block: number times identity
-``world.states[NAME].dynamics`` the block's own dynamics: number times identity
-=============================  ==================================================
+===============================  ==================================================
+path                             meaning of the number given
+===============================  ==================================================
+``links[FROM->TO].price``        the link's price per unit of power (>= 0)
+``links[FROM->TO].noise``        channel noise: the number times the identity
+``budgets[NAME].total``          the budget's total (>= 0)
+``areas[NAME].weight``           weight of the area's error (>= 0)
+``areas[NAME].activity_price``   price of the area's activity (>= 0)
+``sensors[NAME].noise``          sensor noise: the number times the identity
+``world.states[NAME].noise``     process noise of the block: number times identity
+``world.states[NAME].dynamics``  the block's own dynamics: number times identity
+===============================  ==================================================
 
 A path may select several places at once (a *grouped path*): in place of a
 name write ``*`` (every link, area, sensor, budget or state block of the
@@ -110,3 +110,11 @@ _WHERE = {
 __all__ = list(_WHERE)
 
 __getattr__, __dir__ = lazy_parts(__name__, _WHERE)
+
+# `sweep` and `compare` share their names with the parts that hold them.
+# Importing such a part after the package (as `pytest --doctest-modules` or
+# any `import hierarchy.studies.sweep` does) binds the package's name to the
+# part module, and `studies.sweep(...)` then fails; loaded here, first, the
+# names stay the functions.
+from hierarchy.studies.compare import compare  # noqa: E402
+from hierarchy.studies.sweep import sweep  # noqa: E402
