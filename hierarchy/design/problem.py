@@ -3,7 +3,7 @@ units the solver sees them, and the objective with its exact gradient.
 
 Gains are scaled so that the solver works in natural units: a sender gain is
 measured in units of its channel's noise (so scaling a link's noise by ``c``
-and its price by ``1/c`` gives the solver the very same problem: model.md's
+and its price by ``1/c`` gives the solver the very same problem: docs/model.md's
 scale law), a receiver gain in the inverse units, and the objective relative
 to the weighted prior error. Flattening is private to this module and the
 solver; everything else sees named :class:`~hierarchy.loop.gains.Gains`.

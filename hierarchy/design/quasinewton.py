@@ -17,6 +17,8 @@ from dataclasses import dataclass
 
 import numpy as np
 
+__all__ = ['DENSE_LIMIT', 'F_FLOOR', 'STALL_GTOL', 'GAIN_TOL', 'HESSIAN_LIMIT', 'CONVERGED', 'ITERATION_LIMIT', 'FAILED', 'Outcome', 'minimise', 'newton_gain']
+
 DENSE_LIMIT = 1500
 
 #: Below this the objective has no scale of its own for the relative tests

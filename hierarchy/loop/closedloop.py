@@ -14,7 +14,7 @@ noises ``nu = [w; v_sensors...; eta_links...]`` with covariance ``Omega``. With
 
 Because ``xi(t)`` and ``nu(t)`` are independent, ``Cov(q) = blkdiag(Sigma,
 Omega)`` where ``Sigma`` solves ``Sigma = Phi Sigma Phi' + Gamma Omega Gamma'``.
-Timing (model.md): predictions are formed from ``z(t)``, residuals from sensor
+Timing (docs/model.md): predictions are formed from ``z(t)``, residuals from sensor
 values at ``t`` and the predictions received at ``t``, and areas move on to
 ``t+1``.
 
@@ -48,6 +48,8 @@ import numpy as np
 
 from hierarchy.loop.gains import Gains, gain_shapes, paired_prediction
 from hierarchy.spec.model import PREDICTION, Spec
+
+__all__ = ['Layout', 'LinkLayout', 'ClosedLoop', 'assemble', 'Structure', 'Parts', 'Entries', 'SparseProduct']
 
 
 @dataclass(frozen=True)

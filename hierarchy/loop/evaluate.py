@@ -19,6 +19,8 @@ from hierarchy.loop.gains import Gains, check_gains, with_pins
 from hierarchy.spec.model import Spec
 from hierarchy.spec.rules import STABLE_RADIUS  # a closed loop is stable below it: the world's margin too
 
+__all__ = ['RESIDUAL_RTOL', 'PSD_RTOL', 'AreaScore', 'LinkScore', 'Scores', 'spectral_radius', 'loop_radius', 'check_stable', 'area_radius', 'link_powers', 'link_covariances', 'score', 'check_scores', 'evaluate', 'cost_and_gradient', 'flat_cost_and_gradient', 'flat_cost']
+
 #: Final scores are refused when the Lyapunov residual
 #: ``||Sigma - Phi Sigma Phi' - Gamma Omega Gamma'||_F`` exceeds this times
 #: ``||Sigma||_F + ||Phi Sigma Phi'||_F + ||Gamma Omega Gamma'||_F``.
