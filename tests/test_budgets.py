@@ -3,6 +3,8 @@ against closed forms, a direct convex program and its own price form.
 
 Sources are named beside each check."""
 
+from pathlib import Path
+
 import numpy as np
 import pytest
 from scipy.optimize import brentq
@@ -241,31 +243,29 @@ def test_check_and_the_result_tables_show_the_new_budget_terms(tmp_path, capsys)
     assert data["budgets"]["b"]["used"] == pytest.approx(used, rel=1e-12)
 
 
-def test_a_stalled_block_descent_is_closed_by_scaling_and_checked():
-    """Generated 8 areas with three overlapping budgets (as in
-    benchmarks/budgets.py): the gains stop answering the multipliers with the
-    budgets missed by about 5e-5, above budget_rtol. The scaling then meets
-    every budget, and `converged` is claimed only with the gains stationary
-    at the shadow prices to STALL_GTOL, checked here from scratch."""
+def test_a_stalled_block_descent_is_closed_by_scaling_and_checked(monkeypatch):
+    """When the gains stop answering the multipliers before the budgets are
+    spent to budget_rtol (seen on a generated 8-area circuit with three
+    overlapping budgets, at a miss of 4.9e-5, with one BLAS thread), the
+    scaling meets every budget, and `converged` is claimed only with the
+    gains stationary at the shadow prices to STALL_GTOL, checked here from
+    scratch. The stall is forced: the block steps are told the budgets are
+    always missed by 1e-3, so only the stall exit can end them."""
     import importlib
 
     from hierarchy.design.allocation import constraints
     from hierarchy.design.problem import Problem
     from hierarchy.design.quasinewton import STALL_GTOL
-    from hierarchy.spec.generate import generate_spec_text
+    from hierarchy.spec import load_spec
 
-    text = generate_spec_text(areas=8, levels=4, density=0.175, seed=0, area_dim=2, budgets=True)
-    spec = parse_spec(text)
-    ids = [lid for b in spec.budgets for lid in b.links]
-    T = sum(b.total for b in spec.budgets)
-    low = [lid for b in spec.budgets if int(b.name.split("-")[1]) <= 2 for lid in b.links]
-    pred = [lid for lid in ids if spec.link(lid).kind == "prediction"]
-    rows = [("total", ids, T), ("predictions", pred, 0.3 * T), ("lower", low, 0.5 * T)]
-    spec = parse_spec(text[:text.index("budgets:")] + "budgets:\n" + "".join(
-        f"  - {{name: {n}, links: [{', '.join(l)}], total: {t!r}}}\n" for n, l, t in rows))
-    res = design_budgets(spec)
+    budgets = importlib.import_module("hierarchy.design.budgets")
+    gaps = budgets._BlockDescent._gaps
+    monkeypatch.setattr(budgets._BlockDescent, "_gaps",
+                        lambda self, theta: (max(gaps(self, theta)[0], 1e-3), gaps(self, theta)[1]))
+    spec = load_spec(Path(__file__).resolve().parents[1] / "specs" / "two-senses.yaml")
+    res = design_budgets(spec, OPTS)
     assert all(b.met for b in res.budgets.values())
-    assert "stalled" in res.message and "scaled to meet them" in res.message, res.message
+    assert "stalled with the budgets missed by 1.0e-03" in res.message, res.message
     every = constraints(spec)
     mu = np.array([res.budgets[n].shadow_price for n in every.names])
     prob = Problem(spec)
@@ -274,4 +274,4 @@ def test_a_stalled_block_descent_is_closed_by_scaling_and_checked():
     f, g = prob.value_and_grad(theta)
     grel = float(np.max(np.abs(g * prob.units(theta)))) / abs(f)
     assert (res.status == "converged") == (grel <= STALL_GTOL), (res.status, grel)
-    assert f"{grel:.1e}" in res.message
+    assert f"relative gradient of {grel:.1e}" in res.message
