@@ -80,17 +80,17 @@ def design_budgets(spec: Spec, options: Options | None = None, start: Gains | No
                 setattr(ref, attr, getattr(prob, attr))
         prob = ref
     theta = _meet_budgets(prob, best.x, rows, bcd.mu)
+    closing = ""  # said of a converged design too
     if bcd.stalled_at is not None:
         # Judged as the quasi-Newton judges a point where no step helps.
         f, g = bcd.prob.value_and_grad(theta)
         grel = np.inf if g is None else \
             float(np.max(np.abs(g * bcd.prob.units(theta)), initial=0.0)) / max(abs(f), F_FLOOR)
-        what = (f"the block steps stalled with the budgets missed by {bcd.stalled_at:.1e} (relative) and the "
-                f"links were scaled to meet them; the gains are stationary there to a relative gradient of {grel:.1e}")
-        message = what if grel > STALL_GTOL else ""
-        closing = None if message else what
-    else:
-        closing = None
+        closing = (f"the block steps stalled with the budgets missed by {bcd.stalled_at:.1e} (relative) and the "
+                   f"links were scaled to meet them; the gains are stationary there to a relative gradient of "
+                   f"{grel:.1e}")
+        if grel > STALL_GTOL:
+            message, closing = closing, ""
     result = _finish(prob, theta, best, iterations, nstarts, time.perf_counter() - t0, "budget",
                      shadow=_shadow_text(spec, rows, bcd.mu))
     result.spec = spec
@@ -114,10 +114,9 @@ def design_budgets(spec: Spec, options: Options | None = None, start: Gains | No
         message = (message + "; " if message else "") + f"budget(s) not met: {', '.join(unmet)}"
     elif message and result.status == CONVERGED:
         result.status = ITERATION_LIMIT
-    if message:
-        result.message = f"{result.message}; {message}" if result.message else message
-    elif closing:
-        result.message = f"{result.message}; {closing}" if result.message else closing
+    said = message or closing
+    if said:
+        result.message = f"{result.message}; {said}" if result.message else said
     return result
 
 

@@ -237,11 +237,11 @@ def _polish(prob: Problem, x0, opts: Options, max_iter: int, wake: bool = True, 
     up the descent's allowance and leave the design unconverged for want of
     iterations (at 16 areas one pass took 3,000 of the 3,180 iterations)."""
     best, x, iterations, wakes, balances = None, x0, 0, 0, 0
-    trials = 0  # iterations spent by stream trials, not by the descent
+    trials0 = prob.trial_iterations  # stream trials count there, not against the descent
     last = prob.value(x0) if settled else None
     converged_f = np.inf  # objective at the last converged round
-    while iterations - trials < max_iter:
-        out = minimise(prob.value_and_grad, x, max_iter=min(CHUNK, max_iter - (iterations - trials)),
+    while (descent := iterations - (prob.trial_iterations - trials0)) < max_iter:
+        out = minimise(prob.value_and_grad, x, max_iter=min(CHUNK, max_iter - descent),
                        gtol=opts.gtol, ftol=opts.ftol, unit=prob.units(x), curvature=curvature, value=prob.value)
         iterations += out.iterations
         curvature = out.curvature
@@ -264,10 +264,9 @@ def _polish(prob: Problem, x0, opts: Options, max_iter: int, wake: bool = True, 
         # sit silent (a saddle) while the rest of the design still creeps.
         if wake and moved is None and best.status != FAILED and wakes < 8:
             moved = _wake_silent(prob, best)
-            if moved is None and iterations - trials < max_iter:
+            if moved is None and iterations - (prob.trial_iterations - trials0) < max_iter:
                 moved, used = _wake_streams(prob, best, opts, min(STREAM_ITER * MAX_STREAMS, max_iter))
                 iterations += used
-                trials += used
                 prob.trial_iterations += used
             if moved is None:
                 prob.silence_checked = (best.f, _tested_links(prob, best))
