@@ -29,9 +29,15 @@ def relay_chain(hops: int, price: float = 0.002):
     ``hops - 1`` untargeted relays."""
     names = [f"r{i}" for i in range(1, hops)]
     chain = ["gauge"] + names + ["top"]
-    relays = "".join(f"  {n}: {{dim: 1}}\n" for n in names)
+    return gauge_and_relays(names, zip(chain[:-1], chain[1:]), price)
+
+
+def gauge_and_relays(relays, pairs, price: float = 0.002):
+    """A gauge on one world level, untargeted relay areas ``relays``, a
+    targeted area ``top`` and residual links ``pairs`` (sender, receiver)."""
+    areas = "".join(f"  {n}: {{dim: 1}}\n" for n in relays)
     links = "".join(f"  - {{from: {a}, to: {b}, kind: residual, noise: 0.02, price: {price}}}\n"
-                    for a, b in zip(chain[:-1], chain[1:]))
+                    for a, b in pairs)
     return parse_spec(f"""spec: 1
 world:
   states:
@@ -39,7 +45,7 @@ world:
 sensors:
   gauge: {{observes: {{level: 1}}, noise: 0.05}}
 areas:
-{relays}  top: {{tracks: level, weight: 1.0}}
+{areas}  top: {{tracks: level, weight: 1.0}}
 links:
 {links}""")
 
@@ -137,20 +143,7 @@ def test_silent_links_say_what_was_tested():
 def two_relay_streams():
     """A gauge whose readings reach the targeted area through either of two
     untargeted relays (two streams of two links each)."""
-    links = "".join(f"  - {{from: {a}, to: {b}, kind: residual, noise: 0.02, price: 0.002}}\n"
-                    for a, b in [("gauge", "r1"), ("r1", "top"), ("gauge", "q1"), ("q1", "top")])
-    return parse_spec(f"""spec: 1
-world:
-  states:
-    level: {{dim: 1, dynamics: 0.95, noise: 0.05}}
-sensors:
-  gauge: {{observes: {{level: 1}}, noise: 0.05}}
-areas:
-  r1: {{dim: 1}}
-  q1: {{dim: 1}}
-  top: {{tracks: level, weight: 1.0}}
-links:
-{links}""")
+    return gauge_and_relays(["r1", "q1"], [("gauge", "r1"), ("r1", "top"), ("gauge", "q1"), ("q1", "top")])
 
 
 def test_searches_are_reported_and_agree_on_the_example():
