@@ -25,6 +25,7 @@ random stable matrix), medians of several, and prints their ratio.
     python benchmarks/scale.py --sizes 32 --forms price,budget-1,budget-3
     python benchmarks/scale.py --sizes 64,91 --no-baseline   # the baseline takes many minutes there
     python benchmarks/scale.py --evaluate-only              # evaluation times only, both commits
+    python benchmarks/scale.py --dask-sweep 91              # a price sweep at 91 areas on a local Dask cluster
 
 Baseline results are kept in ``--cache`` (a JSON file in the temporary
 folder by default), so a second run does not redesign them. Wall times
@@ -216,6 +217,57 @@ def evaluate_only(sizes, kinds, base_root) -> int:
     return 0
 
 
+#: The Dask sweep: every prediction link's price set to each value in turn.
+SWEEP_PATH = "links[kind:prediction].price"
+SWEEP_VALUES = (0.05, 0.1, 0.2, 0.4)
+
+
+def dask_sweep(areas: int, workers: int) -> int:
+    """A sweep of the ``areas``-area circuit (default density) over
+    ``SWEEP_VALUES`` of ``SWEEP_PATH``, its points run on a local Dask
+    cluster of ``workers`` single-threaded worker processes, through the
+    same ``hierarchy.studies.sweep(dask=...)`` a user points at a cluster.
+
+    Prints each point's status, objective and design time, and the workers'
+    CPU time against the sweep's wall time (how many workers were busy on
+    average)."""
+    # Workers are fresh processes: they inherit one BLAS thread and this
+    # checkout (not whatever ``hierarchy`` is installed).
+    os.environ.update(OPENBLAS_NUM_THREADS="1", OMP_NUM_THREADS="1", MKL_NUM_THREADS="1",
+                      PYTHONPATH=HERE + os.pathsep + os.environ.get("PYTHONPATH", ""))
+    from distributed import Client, LocalCluster
+
+    from hierarchy.spec import parse_spec
+    from hierarchy.studies import sweep
+
+    spec = parse_spec(circuit_text(areas, DEFAULT_DENSITY, "price"))
+    print(f"\nDask sweep: {areas} areas, {len(spec.links)} links; {SWEEP_PATH} over "
+          f"{', '.join(map(str, SWEEP_VALUES))}; local cluster of {workers} worker processes x 1 thread")
+    with LocalCluster(n_workers=workers, threads_per_worker=1, processes=True, dashboard_address=None) as cluster, \
+            Client(cluster) as client:
+        t0 = time.perf_counter()
+        study = sweep(spec, SWEEP_PATH, SWEEP_VALUES, dask=client, workers=workers)
+        wall = time.perf_counter() - t0
+        cpu = client.run(time.process_time)  # each worker process's CPU seconds since it started
+    header = (f"{'price':>7} {'status':<16} {'objective':>12} {'silent':>6} {'evals':>6} {'time s':>7}  "
+              f"{'kept':<9} agree")
+    print(header)
+    print("-" * len(header))
+    for value, row in zip(SWEEP_VALUES, study.rows):
+        print(f"{value:>7g} {row['status']:<16} {row['objective']:>12.8g} {len(row['silent_links']):>6} "
+              f"{row['evaluations']:>6} {row['seconds']:>7.1f}  {row['search']:<9} {row['agreement']}")
+    total = sum(cpu.values())
+    print(f"chunks {study.chunks}; worker CPU {' + '.join(f'{c:.0f}' for c in cpu.values())} = {total:.0f} s "
+          f"in {wall:.0f} s wall: {total / wall:.2f} of {len(cpu)} workers busy on average")
+    print(f"(the study's own checks: each chunk walks its points forward and then backward, warm-starting each")
+    print(f"from the one before, and designs cold where the walks disagree: {study.computed} designs in all;")
+    print(f"kept = the walk whose design is kept, agree = designs of the point that agree with it;")
+    print(f"time s = the kept design's time, each a full design with its feed-forward-first search)")
+    bad = [v for v, r in zip(SWEEP_VALUES, study.rows) if r["status"] != "converged"]
+    print(f"Points not converged: {', '.join(map(str, bad)) if bad else 'none'}")
+    return 0
+
+
 def main(argv=None) -> int:
     ap = argparse.ArgumentParser(description=__doc__.splitlines()[0])
     ap.add_argument("--quick", action="store_true", help="8 and 16 areas, price form, default density")
@@ -229,6 +281,9 @@ def main(argv=None) -> int:
                     help="JSON file keeping the baseline's results between runs")
     ap.add_argument("--evaluate-only", action="store_true",
                     help="only time one value-and-gradient, this commit against the baseline (no designs)")
+    ap.add_argument("--dask-sweep", type=int, metavar="AREAS",
+                    help="instead of the table: a price sweep of the AREAS-area circuit on a local Dask cluster")
+    ap.add_argument("--workers", type=int, default=2, help="Dask workers for --dask-sweep (default 2)")
     ap.add_argument("--child", help=argparse.SUPPRESS)
     args = ap.parse_args(argv)
     if args.child:
@@ -250,6 +305,8 @@ def main(argv=None) -> int:
     print(f"  measured: {code_version()}; baseline: "
           f"{'(not run)' if args.no_baseline else args.baseline}; this process: " + "; ".join(blas_header()))
     print(f"  load average at start {os.getloadavg()[0]:.1f}")
+    if args.dask_sweep:
+        return dask_sweep(args.dask_sweep, args.workers)
     if args.evaluate_only:
         return evaluate_only(sizes, kinds, None if args.no_baseline else baseline_root(args.baseline))
     cache = {}
