@@ -11,12 +11,12 @@ from hierarchy.loop.evaluate import link_powers, score
 from hierarchy.loop.gains import Gains, with_pins
 from hierarchy.spec.model import Spec
 from hierarchy.design.problem import Problem
-from hierarchy.design.quasinewton import CONVERGED, F_FLOOR, FAILED, ITERATION_LIMIT, STALL_GTOL, minimise
+from hierarchy.design.quasinewton import CONVERGED, DENSE_LIMIT, F_FLOOR, FAILED, ITERATION_LIMIT, STALL_GTOL, minimise
 from hierarchy.design.prices import CHUNK, _finish, _polish, _solve_prices
 from hierarchy.design.result import BUDGET_TOL, BudgetUse, DesignResult, Options
 from hierarchy.design.silent import _link_powers, _receivers, _silence_floor
 
-__all__ = ['design_budgets', 'BLOCK_ITER', 'BLOCK_SETTLED', 'BUDGET_ITER', 'SPREAD', 'COARSE_TOL', 'COARSE_STEPS', 'IDLE_STEPS']
+__all__ = ['design_budgets', 'BLOCK_ITER', 'BLOCK_SETTLED', 'BUDGET_ITER', 'LIMITED_BUDGET_ITER', 'SPREAD', 'COARSE_TOL', 'COARSE_STEPS', 'IDLE_STEPS', 'MU_SETTLED']
 
 
 def design_budgets(spec: Spec, options: Options | None = None, start: Gains | None = None) -> DesignResult:
@@ -42,10 +42,13 @@ def design_budgets(spec: Spec, options: Options | None = None, start: Gains | No
     budgets are spent to ``budget_rtol`` at a converged gains block, and the
     links are then scaled to meet them exactly. When the gains stop
     answering the multipliers' changes (``IDLE_STEPS`` steps in a row need
-    no iteration) before that, the scaling closes the miss left, and the
+    no iteration), or the multipliers settle (``IDLE_STEPS`` converged steps
+    in a row move them by less than ``MU_SETTLED``) while the miss wanders
+    at the gains' resolution, the scaling closes the miss left, and the
     design counts as converged only if its gains are then stationary to
-    ``STALL_GTOL`` (the quasi-Newton's rule where no step helps); the
-    message says so either way.
+    ``STALL_GTOL`` (the quasi-Newton's rule where no step helps; the
+    settled exit is only taken where that holds); the message says so
+    either way.
 
     A budget of total 0 switches its links off; its shadow price is the
     largest marginal value of power at zero over its links
@@ -86,7 +89,9 @@ def design_budgets(spec: Spec, options: Options | None = None, start: Gains | No
         f, g = bcd.prob.value_and_grad(theta)
         grel = np.inf if g is None else \
             float(np.max(np.abs(g * bcd.prob.units(theta)), initial=0.0)) / max(abs(f), F_FLOOR)
-        closing = (f"the block steps stalled with the budgets missed by {bcd.stalled_at:.1e} (relative) and the "
+        why = ("the block steps stalled" if bcd.stall_kind == "stalled" else
+               f"the budgets' prices settled (within {MU_SETTLED:g} over {IDLE_STEPS} block steps)")
+        closing = (f"{why} with the budgets missed by {bcd.stalled_at:.1e} (relative) and the "
                    f"links were scaled to meet them; the gains are stationary there to a relative gradient of "
                    f"{grel:.1e}")
         if grel > STALL_GTOL:
@@ -127,8 +132,15 @@ def design_budgets(spec: Spec, options: Options | None = None, start: Gains | No
 BLOCK_ITER = 40
 BLOCK_SETTLED = 1e-2
 #: The budget form may use this times ``max_iter`` iterations in all (the
-#: price form's polish, plus the steps that follow the multipliers).
-BUDGET_ITER = 2
+#: price form's polish, plus the steps that follow the multipliers). At 16
+#: generated areas the polish alone takes the whole ``max_iter``, and the
+#: block steps after it need about 1,500 more (twice ``max_iter`` ended at
+#: the limit there). Circuits whose gains block runs on limited-memory BFGS
+#: (above ``DENSE_LIMIT`` free gains) get ``LIMITED_BUDGET_ITER``: at 32
+#: areas four times ``max_iter`` doubled the time and still ended at the
+#: limit.
+BUDGET_ITER = 4
+LIMITED_BUDGET_ITER = 2
 #: The allocation's trust region: powers within [p / spread, p spread].
 SPREAD = (1.05, 2.0, 8.0)  # (smallest, first, largest)
 #: Budgets within this (relative) of their totals, or this many cheap
@@ -140,6 +152,10 @@ COARSE_STEPS = 25
 #: Block steps in a row whose gains step needs no iteration at all before the
 #: block descent leaves the rest of the budgets' miss to the exact scaling.
 IDLE_STEPS = 3
+#: Multipliers that move by less than this (relative) in IDLE_STEPS converged
+#: block steps in a row have settled: the budgets' miss left is the gains'
+#: own resolution, and the exact scaling is tried on it.
+MU_SETTLED = 5e-3
 
 
 class _BlockDescent:
@@ -160,6 +176,7 @@ class _BlockDescent:
         self.prob = self.ref
         self.settled = False  # whether the last gains step ended stationary
         self.stalled_at = None  # the budgets' miss the block steps left to the scaling
+        self.stall_kind = ""  # why they left it: "stalled" or "settled"
         # A link in no budget row, or whose sender is pinned, keeps its power.
         self.fixed = ~np.any(rows.W > 0, axis=0) | np.array(
             [not self.ref.sender_slices(l.id) for l in spec.links])
@@ -332,8 +349,9 @@ class _BlockDescent:
             return best, iterations, nstarts, ""
         best, iterations, nstarts = _solve_prices(self.prob, opts, starts, polish_iter=0, wake=False)
         spread, polished, curvature, message = SPREAD[1], False, None, ""
-        last_miss, block, idle = np.inf, BLOCK_ITER, 0
-        left = BUDGET_ITER * opts.max_iter - iterations
+        last_miss, block, idle, calm = np.inf, BLOCK_ITER, 0, 0
+        allowance = (BUDGET_ITER if self.prob.size <= DENSE_LIMIT else LIMITED_BUDGET_ITER) * opts.max_iter
+        left = allowance - iterations
         for step in range(opts.budget_rounds):
             if not np.isfinite(best.f) or left <= 0:
                 break
@@ -366,15 +384,20 @@ class _BlockDescent:
             if polished and best.status == CONVERGED and miss <= opts.budget_rtol and slack:
                 self.mu = np.maximum(mu, 0.0)
                 return best, iterations, nstarts, ""
-            idle = idle + 1 if polished and best.status == CONVERGED and out.iterations == 0 and slack \
-                and miss <= COARSE_TOL else 0
-            if idle >= IDLE_STEPS:
+            near = polished and best.status == CONVERGED and slack and miss <= COARSE_TOL
+            idle = idle + 1 if near and out.iterations == 0 else 0
+            calm = calm + 1 if near and change < MU_SETTLED else 0
+            if idle >= IDLE_STEPS or (calm >= IDLE_STEPS and self.closes(best.x, np.maximum(mu, 0.0))):
                 # The gains no longer answer the multipliers' changes (each
-                # step finds them stationary to gtol already), so the miss
-                # stays: the exact scaling of design_budgets closes it, and
-                # the gains' stationarity is checked again there.
+                # step finds them stationary to gtol already), or the
+                # multipliers have settled while the miss wanders at the
+                # gains' resolution: the exact scaling of design_budgets
+                # closes it, and the gains' stationarity is checked there.
                 self.mu, self.stalled_at = np.maximum(mu, 0.0), miss
+                self.stall_kind = "stalled" if idle >= IDLE_STEPS else "settled"
                 return best, iterations, nstarts, ""
+            if calm >= IDLE_STEPS:
+                calm = 0  # the scaled design is not stationary yet: carry on
             # The trust region widens while the budgets' miss shrinks, and
             # narrows when it grows (the model was trusted too far).
             spread = min(spread * 1.5, SPREAD[2]) if miss < last_miss else max(np.sqrt(spread), SPREAD[0])
@@ -386,7 +409,7 @@ class _BlockDescent:
             message = f"budgets not spent to {opts.budget_rtol:g} at a stationary design after " \
                       f"{opts.budget_rounds} block steps"
         if not message:
-            message = f"iteration limit ({BUDGET_ITER * opts.max_iter}) reached before a KKT point of the budgets"
+            message = f"iteration limit ({allowance}) reached before a KKT point of the budgets"
         miss, slack = self._gaps(best.x)
         what = []
         if miss > opts.budget_rtol:
@@ -396,6 +419,15 @@ class _BlockDescent:
         if best.status != CONVERGED:
             what.append("the gains are not stationary at the budgets' prices")
         return best, iterations, nstarts, message + (f" ({'; '.join(what)})" if what else "")
+
+    def closes(self, theta, mu) -> bool:
+        """Whether scaling the links to meet the budgets exactly
+        (:func:`_meet_budgets`) from ``theta`` leaves the gains stationary
+        for the Lagrangian at ``mu`` to ``STALL_GTOL`` (relative gradient)."""
+        scaled = _meet_budgets(self.prob, theta, self.rows, mu)
+        f, g = self.prob.value_and_grad(scaled)
+        return g is not None and float(np.max(np.abs(g * self.prob.units(scaled)), initial=0.0)) \
+            / max(abs(f), F_FLOOR) <= STALL_GTOL
 
     def _gaps(self, theta):
         """Largest relative miss of a row that must be spent (positive

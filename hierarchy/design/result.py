@@ -33,7 +33,8 @@ class Options:
         Starts tried (the informed start plus seeded random ones).
     max_iter : int
         L-BFGS iterations for the best start (the budget form may use
-        ``BUDGET_ITER`` times this over its block steps).
+        ``BUDGET_ITER`` times this over its block steps, ``LIMITED_BUDGET_ITER``
+        times above ``DENSE_LIMIT`` free gains).
     probe_iter : int
         Iterations each start gets before the best one is carried on.
     seed : int
