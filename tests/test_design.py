@@ -365,6 +365,36 @@ def test_screened_wake_up_finds_what_link_by_link_tests_find(monkeypatch):
     assert res.scores.links["s3->a3"].power == pytest.approx(P, rel=1e-4)
 
 
+def test_a_wake_pass_over_every_link_wakes_each_link_that_pays():
+    # Six silent sources, three of them made cheap (price 0.1 < s2/N = 2, so
+    # uncoded transmission pays: P = sqrt(s2 N / price) - N > 0). A plain
+    # wake-up pass returns at the first link that wakes; the pass the
+    # active-set design runs (every=True) goes on from there and wakes all
+    # three cheap links, never a dear one, each step lowering the objective.
+    import importlib
+
+    from hierarchy.design.quasinewton import Outcome
+
+    D = importlib.import_module("hierarchy.design.silent")
+    variances, noises = [1.0] * 6, [0.5] * 6
+    dear = design_prices(parse_spec(spec_text(variances, noises, [3.0] * 6)), FAST)
+    assert len(dear.silent) == 6
+    cheap = parse_spec(spec_text(variances, noises, [0.1, 3.0, 0.1, 3.0, 0.1, 3.0]))
+    prob = Problem(cheap)
+    theta = prob.pack(dear.gains)
+    start = Outcome(theta, prob.value(theta), 0.0, 0, "converged", "")
+
+    def sending(x):
+        return {i for i in range(6) if np.any(x[prob.sender_slices(f"s{i}->a{i}")[0]])}
+
+    one = D._wake_silent(prob, start)
+    every = D._wake_silent(prob, start, every=True)
+    assert one is not None and every is not None
+    assert len(sending(one)) == 1 and sending(one) <= {0, 2, 4}
+    assert sending(every) == {0, 2, 4}
+    assert prob.value(every) < prob.value(one) < start.f
+
+
 @pytest.mark.parametrize("areas,seed", [(8, 1), (10, 1), (12, 2)])
 def test_group_tested_switch_off_silences_the_links_one_by_one_tests_do(areas, seed):
     # Group testing (all fading links off in one value, halves only where the
@@ -422,3 +452,48 @@ def test_active_set_design_is_no_worse_than_the_whole_circuit_design(areas, seed
     # ACTIVE_GAIN, the links are honestly reported untested).
     untested = [sum(v["verdict"] == "untested" for v in r.silent.values()) for r in (active, whole)]
     assert active.silent and untested[0] <= untested[1]
+
+
+def test_a_whole_circuit_polish_cut_short_hands_back_to_the_active_rounds(monkeypatch):
+    # At 64 generated areas the whole-circuit polish that follows the active
+    # rounds (there on limited-memory BFGS) woke a link in each of its wake-up
+    # passes and ended at the iteration limit: the design was reported
+    # unconverged, 1.2e-3 above the optimum found later. Forced here: the
+    # first rounds are reported to have stopped trading places, so they hand
+    # over to the whole circuit, and the first whole-circuit polish is
+    # reported cut short at the iteration limit. The design must
+    # go back to the active rounds and end converged, no worse than the
+    # whole design.
+    import importlib
+    from dataclasses import replace
+
+    from hierarchy.design.quasinewton import ITERATION_LIMIT
+    from hierarchy.spec.generate import generate_spec_text
+
+    P = importlib.import_module("hierarchy.design.prices")
+    spec = parse_spec(generate_spec_text(areas=10, levels=5, density=0.3, seed=0))
+    whole = design_prices(spec, FAST)
+    size = Problem(spec).size
+    polish, calls = P._polish, []
+    rounds = P._active_rounds
+
+    def short(prob, x0, opts, max_iter, *a, **k):
+        out, used = polish(prob, x0, opts, max_iter, *a, **k)
+        if prob.size == size and max_iter == opts.max_iter:
+            calls.append("whole")
+            if calls.count("whole") == 1:
+                out = replace(out, status=ITERATION_LIMIT, message="cut short (forced)")
+        return out, used
+
+    def counted(*a, **k):
+        calls.append("rounds")
+        best, theta, used, part, tiny, done = rounds(*a, **k)
+        return best, theta, used, part, tiny or calls.count("rounds") == 1, done
+
+    monkeypatch.setattr(P, "ACTIVE_GAINS", 0)
+    monkeypatch.setattr(P, "_polish", short)
+    monkeypatch.setattr(P, "_active_rounds", counted)
+    active = design_prices(spec, FAST)
+    assert calls[:3] == ["rounds", "whole", "rounds"], calls
+    assert active.converged, active.message
+    assert active.objective <= whole.objective + 1e-6 * abs(whole.objective)

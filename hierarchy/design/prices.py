@@ -21,6 +21,7 @@ from hierarchy.design.quasinewton import (
     FAILED,
     ITERATION_LIMIT,
     Outcome,
+    STALL_GTOL,
     _Dense,
     minimise,
 )
@@ -38,7 +39,8 @@ from hierarchy.design.silent import (
     _wake_streams,
 )
 
-__all__ = ['CHUNK', 'BALANCE_SNR', 'ACTIVE_GAINS', 'ACTIVE_ROUNDS', 'ACTIVE_GAIN', 'design_prices',
+__all__ = ['CHUNK', 'BALANCE_SNR', 'ACTIVE_GAINS', 'ACTIVE_ROUNDS', 'ACTIVE_GAIN', 'WHOLE_SETTLES',
+           'design_prices',
            'raise_unstable_pins']
 
 
@@ -58,6 +60,11 @@ ACTIVE_ROUNDS = 12
 #: (relative), or the active-set design stops there: waking modes that buy
 #: 1e-8 of the objective each would otherwise take every round.
 ACTIVE_GAIN = 1e-7
+#: Whole-circuit polishes of the active-set design: after one that lowers
+#: the objective but is cut short (at 64 areas it woke a link in each of its
+#: 8 wake-up passes and ended at the iteration limit), the rounds start
+#: again from its design.
+WHOLE_SETTLES = 3
 
 
 def _solve_prices(prob: Problem, opts: Options, starts=None, polish_iter=None, wake=True):
@@ -119,16 +126,58 @@ def _solve_active(prob: Problem, opts: Options, starts=None):
     converged in the whole circuit when its relative gradient there is no
     larger than in the sub-circuit (zero is a stationary point of a
     switched-off link, so the two agree unless such a link pulls); else the
-    whole circuit is polished from it. Same return as :func:`_solve_prices`."""
+    whole circuit is polished from it, and if that polish lowers the
+    objective but is cut short, the rounds start again from its design (at
+    most ``WHOLE_SETTLES`` polishes and ``ACTIVE_ROUNDS`` rounds in all).
+    Same return as :func:`_solve_prices`."""
     best, iterations, nstarts = _solve_prices(prob, opts, starts, polish_iter=CHUNK, wake=False)
     if not np.isfinite(best.f):
         return best, iterations, nstarts
     spec = prob.spec
     off = _switch_off_fading(prob, best)
     theta = best.x if off is None else off
+    rounds = 0
+    for settle in range(WHOLE_SETTLES):
+        best, theta, used, part, tiny, rounds = _active_rounds(prob, opts, best, theta, rounds)
+        iterations += used
+        # (A sub-circuit that converged by the stall rule, its objective no
+        # longer falling at a relative gradient above gtol, leaves the whole
+        # circuit converged by the same rule wherever its gradient there is
+        # within STALL_GTOL: same point, same objective.)
+        pulls = not (best.grad_norm <= part.grad_norm * 1.01 + opts.gtol
+                     or (part.grad_norm > opts.gtol and best.grad_norm <= STALL_GTOL))
+        if not (np.isfinite(best.f) and best.status == CONVERGED and (pulls or tiny)):
+            break
+        # The whole circuit's gradient is larger than the sub-circuit's (a
+        # switched-off link pulls after all), or the rounds stopped trading
+        # places: carry on in the whole circuit.
+        more, used = _polish(prob, best.x, opts, opts.max_iter)
+        iterations += used
+        if not more.f <= best.f:
+            break
+        best = more
+        if more.status == CONVERGED or rounds >= ACTIVE_ROUNDS or settle == WHOLE_SETTLES - 1:
+            break
+        # Cut short in the whole circuit (where limited-memory BFGS creeps)
+        # after lowering the objective: the links it woke join the active
+        # sub-circuit, where the rounds can converge.
+        off = _switch_off_fading(prob, best)
+        theta = best.x if off is None else off
+    return best, iterations, nstarts
+
+
+def _active_rounds(prob: Problem, opts: Options, best, theta, rounds: int):
+    """The rounds of :func:`_solve_active` from ``theta`` (``best``, the
+    outcome it came from): design the active sub-circuit, wake-test the
+    whole circuit, repeat. Returns ``(best, theta, iterations, last
+    sub-circuit outcome, whether the rounds stopped trading places, rounds
+    done so far)``."""
+    spec = prob.spec
+    iterations = 0
     before = None  # the last sub-circuit's problem and final curvature
-    woken, tiny = None, False
-    for _ in range(ACTIVE_ROUNDS):
+    woken, tiny, part = None, False, best
+    while rounds < ACTIVE_ROUNDS:
+        rounds += 1
         sub = without_links(spec, _switched_off(prob, theta))
         keep = [prob.layout.link_index[l.id] for l in sub.links]
         subprob = Problem(sub, prob.prices[keep])
@@ -151,7 +200,7 @@ def _solve_active(prob: Problem, opts: Options, starts=None):
         if not np.isfinite(best.f) or best.status == FAILED:
             break
         tiny = woken is not None and not best.f < last.f - ACTIVE_GAIN * max(abs(last.f), F_FLOOR)
-        woken = _wake_silent(prob, best)
+        woken = _wake_silent(prob, best, every=True)
         if woken is None:
             active = set(l.id for l in sub.links)
 
@@ -163,7 +212,10 @@ def _solve_active(prob: Problem, opts: Options, starts=None):
             woken, used = _wake_streams(prob, best, opts, narrow=narrow)
             iterations += used
         if woken is None:
+            # Nothing wakes at this design: its silent links are tested
+            # here, whatever the last wake-up bought.
             prob.silence_checked = (best.f, _tested_links(prob, best))
+            tiny = False
             break
         if tiny:
             # The last wake-up bought next to nothing and another one is on
@@ -171,15 +223,7 @@ def _solve_active(prob: Problem, opts: Options, starts=None):
             # (its polish tests the silent links at the design it returns).
             break
         theta = woken
-    pulls = not best.grad_norm <= part.grad_norm * 1.01 + opts.gtol
-    if np.isfinite(best.f) and best.status == CONVERGED and (pulls or tiny):
-        # The whole circuit's gradient is larger than the sub-circuit's (a
-        # switched-off link pulls after all), or the rounds stopped trading
-        # places: carry on in the whole circuit.
-        more, used = _polish(prob, best.x, opts, opts.max_iter)
-        iterations += used
-        best = more if more.f <= best.f else best
-    return best, iterations, nstarts
+    return best, theta, iterations, part, tiny, rounds
 
 
 def _carry_curvature(old: Problem, curvature, new: Problem, x0):

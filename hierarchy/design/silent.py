@@ -106,8 +106,14 @@ def _silent_ids(prob: Problem, powers: dict) -> list:
             if prob.sender_slices(l.id) and powers[l.id] <= _silence_floor(prob, l) * l.dim]
 
 
-def _wake_silent(prob: Problem, best):
+def _wake_silent(prob: Problem, best, every: bool = False):
     """Try to wake silent links and silent modes of vector links.
+
+    Returns the point of the first wake-up that lowers the objective, or
+    with ``every``, the point after waking, one after another, every link
+    whose test lowers the objective from the point the ones before it left
+    (one pass instead of a pass per link; for the active-set design, whose
+    every wake-up costs a round); ``None`` if nothing wakes.
 
     A zero signal is a saddle of the bilinear products (K*S, P*G): the
     gradient there says nothing. So give the sender a small signal along an
@@ -152,6 +158,7 @@ def _wake_silent(prob: Problem, best):
         hopeful = _screen(prob, theta0, [tests[k] for k in full])
         if hopeful is not None:
             hopeful = {(full[k], trial, delta) for k, trial, delta in hopeful}
+    found = None
     for k, (sl, rsl, dirs, in_full) in enumerate(tests):
         for trial, direction in enumerate(dirs):
             for delta in WAKE_DELTAS:
@@ -161,8 +168,15 @@ def _wake_silent(prob: Problem, best):
                 theta[sl] += delta * direction
                 woken = _best_receiver_step(prob, theta, rsl, f0)
                 if woken is not None:
-                    return woken
-    return None
+                    if not every:
+                        return woken
+                    found = theta0 = woken
+                    f0 = prob.value(woken)
+                    break
+            else:
+                continue
+            break  # this link woke: on to the next one
+    return found
 
 
 def _flow(prob: Problem, silent: set):
