@@ -243,6 +243,28 @@ def test_check_and_the_result_tables_show_the_new_budget_terms(tmp_path, capsys)
     assert data["budgets"]["b"]["used"] == pytest.approx(used, rel=1e-12)
 
 
+def _always_missed(monkeypatch, budgets):
+    """Tell the block steps the budgets are missed by at least 1e-3."""
+    gaps = budgets._BlockDescent._gaps
+    monkeypatch.setattr(budgets._BlockDescent, "_gaps",
+                        lambda self, theta: (max(gaps(self, theta)[0], 1e-3), gaps(self, theta)[1]))
+
+
+def _gradient_at_shadow_prices(spec, res) -> float:
+    """Relative gradient of a budget-form design, recomputed from scratch in
+    the price form at the link prices its shadow prices imply."""
+    from hierarchy.design.allocation import constraints
+    from hierarchy.design.problem import Problem
+
+    every = constraints(spec)
+    mu = np.array([res.budgets[n].shadow_price for n in every.names])
+    prob = Problem(spec)
+    prob.prices = prob.prices + every.W.T @ mu
+    theta = prob.pack(res.gains)
+    f, g = prob.value_and_grad(theta)
+    return float(np.max(np.abs(g * prob.units(theta)))) / abs(f)
+
+
 def test_a_stalled_block_descent_is_closed_by_scaling_and_checked(monkeypatch):
     """When the gains stop answering the multipliers before the budgets are
     spent to budget_rtol (seen on a generated 8-area circuit with three
@@ -254,27 +276,17 @@ def test_a_stalled_block_descent_is_closed_by_scaling_and_checked(monkeypatch):
     the stall exit can end them."""
     import importlib
 
-    from hierarchy.design.allocation import constraints
-    from hierarchy.design.problem import Problem
     from hierarchy.design.quasinewton import STALL_GTOL
     from hierarchy.spec import load_spec
 
     budgets = importlib.import_module("hierarchy.design.budgets")
-    gaps = budgets._BlockDescent._gaps
-    monkeypatch.setattr(budgets._BlockDescent, "_gaps",
-                        lambda self, theta: (max(gaps(self, theta)[0], 1e-3), gaps(self, theta)[1]))
+    _always_missed(monkeypatch, budgets)
     monkeypatch.setattr(budgets._BlockDescent, "closes", lambda self, theta, mu: False)
     spec = load_spec(Path(__file__).resolve().parents[1] / "specs" / "two-senses.yaml")
     res = design_budgets(spec, OPTS)
     assert all(b.met for b in res.budgets.values())
     assert "stalled with the budgets missed by 1.0e-03" in res.message, res.message
-    every = constraints(spec)
-    mu = np.array([res.budgets[n].shadow_price for n in every.names])
-    prob = Problem(spec)
-    prob.prices = prob.prices + every.W.T @ mu
-    theta = prob.pack(res.gains)
-    f, g = prob.value_and_grad(theta)
-    grel = float(np.max(np.abs(g * prob.units(theta)))) / abs(f)
+    grel = _gradient_at_shadow_prices(spec, res)
     assert (res.status == "converged") == (grel <= STALL_GTOL), (res.status, grel)
     assert f"relative gradient of {grel:.1e}" in res.message
 
@@ -293,15 +305,12 @@ def test_settled_prices_are_closed_by_scaling_only_where_the_gains_stay_stationa
     import importlib
     from dataclasses import replace
 
-    from hierarchy.design.allocation import constraints
-    from hierarchy.design.problem import Problem
     from hierarchy.design.quasinewton import STALL_GTOL
     from hierarchy.spec import load_spec
 
     budgets = importlib.import_module("hierarchy.design.budgets")
-    gaps, minimise = budgets._BlockDescent._gaps, budgets.minimise
-    monkeypatch.setattr(budgets._BlockDescent, "_gaps",
-                        lambda self, theta: (max(gaps(self, theta)[0], 1e-3), gaps(self, theta)[1]))
+    minimise = budgets.minimise
+    _always_missed(monkeypatch, budgets)
     monkeypatch.setattr(budgets, "minimise", lambda *a, **k: (lambda o: replace(o, iterations=max(o.iterations, 1)))(
         minimise(*a, **k)))
     tried = []
@@ -316,12 +325,6 @@ def test_settled_prices_are_closed_by_scaling_only_where_the_gains_stay_stationa
         return
     assert "prices settled (within 0.005 over 3 block steps) with the budgets missed by 1.0e-03" in res.message, \
         res.message
-    every = constraints(spec)
-    mu = np.array([res.budgets[n].shadow_price for n in every.names])
-    prob = Problem(spec)
-    prob.prices = prob.prices + every.W.T @ mu
-    theta = prob.pack(res.gains)
-    f, g = prob.value_and_grad(theta)
-    grel = float(np.max(np.abs(g * prob.units(theta)))) / abs(f)
+    grel = _gradient_at_shadow_prices(spec, res)
     assert res.status == "converged" and grel <= STALL_GTOL, (res.status, grel)
     assert f"relative gradient of {grel:.1e}" in res.message
