@@ -11,7 +11,7 @@ from hierarchy.loop.evaluate import link_powers, score
 from hierarchy.loop.gains import Gains, with_pins
 from hierarchy.spec.model import Spec
 from hierarchy.design.problem import Problem
-from hierarchy.design.quasinewton import CONVERGED, DENSE_LIMIT, F_FLOOR, FAILED, ITERATION_LIMIT, STALL_GTOL, minimise
+from hierarchy.design.quasinewton import CONVERGED, DENSE_LIMIT, FAILED, ITERATION_LIMIT, STALL_GTOL, _relative, minimise
 from hierarchy.design.prices import CHUNK, _finish, _polish, _solve_prices
 from hierarchy.design.result import BUDGET_TOL, BudgetUse, DesignResult, Options
 from hierarchy.design.silent import _link_powers, _receivers, _silence_floor
@@ -87,8 +87,7 @@ def design_budgets(spec: Spec, options: Options | None = None, start: Gains | No
     if bcd.stalled_at is not None:
         # Judged as the quasi-Newton judges a point where no step helps.
         f, g = bcd.prob.value_and_grad(theta)
-        grel = np.inf if g is None else \
-            float(np.max(np.abs(g * bcd.prob.units(theta)), initial=0.0)) / max(abs(f), F_FLOOR)
+        grel = np.inf if g is None else _relative(f, g * bcd.prob.units(theta))
         why = ("the block steps stalled" if bcd.stall_kind == "stalled" else
                f"the budgets' prices settled (within {MU_SETTLED:g} over {IDLE_STEPS} block steps)")
         closing = (f"{why} with the budgets missed by {bcd.stalled_at:.1e} (relative) and the "
@@ -426,8 +425,7 @@ class _BlockDescent:
         for the Lagrangian at ``mu`` to ``STALL_GTOL`` (relative gradient)."""
         scaled = _meet_budgets(self.prob, theta, self.rows, mu)
         f, g = self.prob.value_and_grad(scaled)
-        return g is not None and float(np.max(np.abs(g * self.prob.units(scaled)), initial=0.0)) \
-            / max(abs(f), F_FLOOR) <= STALL_GTOL
+        return g is not None and _relative(f, g * self.prob.units(scaled)) <= STALL_GTOL
 
     def _gaps(self, theta):
         """Largest relative miss of a row that must be spent (positive

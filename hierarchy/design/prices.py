@@ -23,6 +23,7 @@ from hierarchy.design.quasinewton import (
     Outcome,
     STALL_GTOL,
     _Dense,
+    _relative,
     minimise,
 )
 from hierarchy.design.result import DesignResult, Options
@@ -133,7 +134,6 @@ def _solve_active(prob: Problem, opts: Options, starts=None):
     best, iterations, nstarts = _solve_prices(prob, opts, starts, polish_iter=CHUNK, wake=False)
     if not np.isfinite(best.f):
         return best, iterations, nstarts
-    spec = prob.spec
     off = _switch_off_fading(prob, best)
     theta = best.x if off is None else off
     rounds = 0
@@ -259,7 +259,7 @@ def _outcome(prob: Problem, theta, like=None) -> Outcome:
     """An :class:`~hierarchy.design.quasinewton.Outcome` of ``prob`` at ``theta`` (status
     and message from ``like``, the search that reached it)."""
     f, g = prob.value_and_grad(theta)
-    grel = float("inf") if g is None else float(np.max(np.abs(g * prob.units(theta)), initial=0.0)) / max(abs(f), F_FLOOR)
+    grel = float("inf") if g is None else _relative(f, g * prob.units(theta))
     if like is None:
         return Outcome(theta, f, grel, 0, CONVERGED, "")
     return Outcome(theta, f, grel, like.iterations, like.status, like.message)
