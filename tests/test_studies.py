@@ -265,9 +265,10 @@ def test_ctrl_c_keeps_finished_points_and_a_rerun_resumes(tmp_path):
     args = ["sweep", "specs/two-level.yaml", "links[upstream-view->station-view].price", "--from", "1e-3",
             "--to", "1", "--points", "8", "--log", "--workers", "1", "--restarts", "2", "--no-plot",
             "--out", str(out)]
-    # The command starts with Ctrl-C at its default, as from a shell: a child
-    # inherits an ignored SIGINT, and something earlier in the full suite
-    # leaves the test process ignoring it (the sweep then ran to the end).
+    # The command starts with Ctrl-C at its default, as from a terminal. A
+    # child inherits an ignored SIGINT, and Python keeps one it was started
+    # with; a background job of a non-interactive shell (as a CI runner may
+    # start the suite) starts that way, and the sweep then ran to the end.
     proc = subprocess.Popen([sys.executable, "-m", "hierarchy", *args], cwd=ROOT, text=True,
                             stdout=subprocess.PIPE, stderr=subprocess.PIPE,
                             preexec_fn=lambda: signal.signal(signal.SIGINT, signal.SIG_DFL))
