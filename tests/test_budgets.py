@@ -158,6 +158,42 @@ def test_shadow_price_is_the_slope_of_the_designed_objective():
     assert mid.budgets["b"].shadow_price == pytest.approx(-slope, rel=1e-4)
 
 
+def test_shadow_prices_of_small_overlapping_budgets_are_slopes_to_1e_4():
+    """A generated circuit whose three overlapping budgets are each worth
+    only 5e-4 to 1e-2 of the objective: a multiplier is then off by the
+    gains' relative gradient times about 1e3, and a gains step that stopped
+    on the objective alone (stationary only to STALL_GTOL) gave 4e-4. The
+    reference slopes come from neighbours designed at tight tolerances
+    (central difference, step 1e-3 of the total; common practice, no
+    source)."""
+    from dataclasses import replace
+
+    from hierarchy.spec.generate import generate_spec_text
+
+    text = generate_spec_text(areas=4, levels=2, density=0.175, seed=0, area_dim=2, budgets=True)
+    spec = parse_spec(text)
+    ids = [lid for b in spec.budgets for lid in b.links]
+    T = sum(b.total for b in spec.budgets)
+    pred = [lid for lid in ids if spec.link(lid).kind == "prediction"]
+    low = [lid for b in spec.budgets if b.name == "level-1-out" for lid in b.links]
+    rows = [("total", ids, T), ("predictions", pred, 0.3 * T), ("lower", low, 0.5 * T)]
+    spec = parse_spec(text[:text.index("budgets:")] + "budgets:\n" + "".join(
+        f"  - {{name: {n}, links: [{', '.join(l)}], total: {t!r}}}\n" for n, l, t in rows))
+    mid = design_budgets(spec, OPTS)
+    assert mid.status == "converged", mid.message
+    tight = replace(OPTS, gtol=1e-9, ftol=1e-15, budget_rtol=1e-7)
+    for k, b in enumerate(spec.budgets):
+        h = 1e-3 * b.total
+
+        def at(total):
+            budgets = tuple(replace(x, total=total) if i == k else x for i, x in enumerate(spec.budgets))
+            return design_budgets(replace(spec, budgets=budgets), tight, start=mid.gains).objective
+
+        slope = -(at(b.total + h) - at(b.total - h)) / (2 * h)
+        assert 5e-4 < slope * b.total / mid.objective < 1e-2
+        assert mid.budgets[b.name].shadow_price == pytest.approx(slope, rel=1e-4), b.name
+
+
 def test_activity_in_a_budget_prices_it_like_an_activity_price():
     # Duality again: the price form with link and activity price lambda
     # against one budget over the link powers plus the area's activity.

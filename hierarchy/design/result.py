@@ -40,7 +40,9 @@ class Options:
     seed : int
         Seed of the random starts (same seed, same design).
     gtol, ftol : float
-        Convergence tolerances on the relative objective.
+        Convergence tolerances on the relative objective (the budget form
+        takes ``ftol`` down to ``BUDGET_FTOL``: its shadow prices need
+        gains stationary to ``gtol``).
     budget_rounds : int
         Most block coordinate descent steps in budget form.
     budget_rtol : float
