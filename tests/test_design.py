@@ -497,3 +497,44 @@ def test_a_whole_circuit_polish_cut_short_hands_back_to_the_active_rounds(monkey
     assert calls[:3] == ["rounds", "whole", "rounds"], calls
     assert active.converged, active.message
     assert active.objective <= whole.objective + 1e-6 * abs(whole.objective)
+
+
+def test_a_failed_whole_circuit_polish_that_changes_nothing_keeps_the_converged_design(monkeypatch):
+    # At 16 generated areas / 158 links the active rounds stopped trading
+    # places (the last wake-up bought under ACTIVE_GAIN) at a design
+    # converged in the whole circuit; the whole-circuit polish that followed
+    # failed at once ("line search cannot make progress", at an area whose M
+    # had entries of 115 against eigenvalues below 1) at the very same
+    # objective, and the design was reported failed. Forced here: the rounds
+    # report that they stopped trading places, and every whole-circuit
+    # polish fails where it starts. The design must stay converged.
+    import importlib
+    from dataclasses import replace
+
+    from hierarchy.design.quasinewton import FAILED
+    from hierarchy.spec.generate import generate_spec_text
+
+    P = importlib.import_module("hierarchy.design.prices")
+    spec = parse_spec(generate_spec_text(areas=10, levels=5, density=0.3, seed=0))
+    size = Problem(spec).size
+    polish, calls = P._polish, []
+    rounds = P._active_rounds
+
+    def failing(prob, x0, opts, max_iter, *a, **k):
+        if prob.size == size and max_iter == opts.max_iter:
+            calls.append("whole")
+            return P._outcome(prob, x0.copy(), replace(P._outcome(prob, x0), status=FAILED,
+                                                       message="line search cannot make progress (forced)")), 0
+        return polish(prob, x0, opts, max_iter, *a, **k)
+
+    def tiny(*a, **k):
+        best, theta, used, part, _, done = rounds(*a, **k)
+        return best, theta, used, part, True, done
+
+    monkeypatch.setattr(P, "ACTIVE_GAINS", 0)
+    monkeypatch.setattr(P, "_polish", failing)
+    monkeypatch.setattr(P, "_active_rounds", tiny)
+    active = design_prices(spec, FAST)
+    assert "whole" in calls
+    assert active.converged, active.message
+    assert "forced" not in active.message

@@ -153,7 +153,12 @@ def _solve_active(prob: Problem, opts: Options, starts=None):
         # places: carry on in the whole circuit.
         more, used = _polish(prob, best.x, opts, opts.max_iter)
         iterations += used
-        if not more.f <= best.f:
+        if not more.f <= best.f or (more.status == FAILED and not more.f < best.f and not pulls):
+            # (A polish that fails without lowering the objective, from a
+            # design already converged in the whole circuit (the rounds
+            # stopped only because waking bought too little), says nothing
+            # new: at 16 areas / 158 links, a line search at a badly
+            # conditioned area M.)
             break
         best = more
         if more.status == CONVERGED or rounds >= ACTIVE_ROUNDS or settle == WHOLE_SETTLES - 1:
