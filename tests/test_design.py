@@ -365,6 +365,36 @@ def test_screened_wake_up_finds_what_link_by_link_tests_find(monkeypatch):
     assert res.scores.links["s3->a3"].power == pytest.approx(P, rel=1e-4)
 
 
+def test_a_wake_pass_on_the_sub_circuit_finds_the_whole_circuit_point():
+    # The active-set design runs the exact wake-up tests on the sub-circuit
+    # of the links not switched off plus the screened ones: the other links
+    # are exactly zero, so each test's objective is the whole circuit's (the
+    # sub-circuit invariant) and the point, embedded back, is the same.
+    import importlib
+
+    from hierarchy.design.prices import _outcome
+    from hierarchy.design.subcircuit import without_links
+
+    D = importlib.import_module("hierarchy.design.silent")
+    variances, noises = [1.0] * 6, [0.5] * 6
+    dear = design_prices(parse_spec(spec_text(variances, noises, [3.0] * 6)), FAST)
+    spec = parse_spec(spec_text(variances, noises, [3.0, 0.1, 3.0, 0.1, 3.0, 3.0]))
+    prob = Problem(spec)
+    best = _outcome(prob, prob.pack(dear.gains))
+    asked = []
+
+    def narrow(ids):
+        asked.append(sorted(ids))
+        return Problem(without_links(spec, [l.id for l in spec.links if l.id not in ids]),
+                       prob.prices[[prob.layout.link_index[i] for i in ids]])
+
+    whole = D._wake_silent(prob, best, every=True)
+    part = D._wake_silent(prob, best, every=True, narrow=narrow)
+    assert asked  # the tests ran on the sub-circuit
+    assert whole is not None and np.allclose(part, whole, rtol=1e-12, atol=1e-14)
+    assert prob.value(part) == pytest.approx(prob.value(whole), rel=1e-12)
+
+
 def test_a_wake_pass_over_every_link_wakes_each_link_that_pays():
     # Six silent sources, three of them made cheap (price 0.1 < s2/N = 2, so
     # uncoded transmission pays: P = sqrt(s2 N / price) - N > 0). A plain

@@ -205,15 +205,16 @@ def _active_rounds(prob: Problem, opts: Options, best, theta, rounds: int):
         if not np.isfinite(best.f) or best.status == FAILED:
             break
         tiny = woken is not None and not best.f < last.f - ACTIVE_GAIN * max(abs(last.f), F_FLOOR)
-        woken = _wake_silent(prob, best, every=True)
+        active = set(l.id for l in sub.links)
+
+        def narrow(ids, active=active):
+            # The sub-circuit of the links not switched off, plus ``ids``.
+            keep = active | set(ids)
+            return Problem(without_links(spec, [l.id for l in spec.links if l.id not in keep]),
+                           prob.prices[[prob.layout.link_index[l.id] for l in spec.links if l.id in keep]])
+
+        woken = _wake_silent(prob, best, every=True, narrow=narrow)
         if woken is None:
-            active = set(l.id for l in sub.links)
-
-            def narrow(ids):
-                keep = active | set(ids)
-                return Problem(without_links(spec, [l.id for l in spec.links if l.id not in keep]),
-                               prob.prices[[prob.layout.link_index[l.id] for l in spec.links if l.id in keep]])
-
             woken, used = _wake_streams(prob, best, opts, narrow=narrow)
             iterations += used
         if woken is None:
