@@ -282,8 +282,11 @@ def test_check_and_the_result_tables_show_the_new_budget_terms(tmp_path, capsys)
 def _always_missed(monkeypatch, budgets):
     """Tell the block steps the budgets are missed by at least 1e-3."""
     gaps = budgets._BlockDescent._gaps
-    monkeypatch.setattr(budgets._BlockDescent, "_gaps",
-                        lambda self, theta: (max(gaps(self, theta)[0], 1e-3), gaps(self, theta)[1]))
+    def missed(self, theta):
+        miss, slack = gaps(self, theta)
+        return max(miss, 1e-3), slack
+
+    monkeypatch.setattr(budgets._BlockDescent, "_gaps", missed)
 
 
 def _gradient_at_shadow_prices(spec, res) -> float:

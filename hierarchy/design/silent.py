@@ -357,7 +357,7 @@ def _wake_streams(prob: Problem, best, opts: Options, budget: int = STREAM_ITER 
         bar = best.f if winner is None else winner.f
         if np.isfinite(out.f) and out.f < bar - 1e-9 * max(abs(bar), F_FLOOR):
             winner = out
-            winner_x = out.x if p is prob else prob.pack(embed(p.unpack(out.x), p.spec, prob.spec))
+            winner_x = _embedded(prob, p, out.x)
     return winner_x, used
 
 
