@@ -205,14 +205,7 @@ def _active_rounds(prob: Problem, opts: Options, best, theta, rounds: int):
         if not np.isfinite(best.f) or best.status == FAILED:
             break
         tiny = woken is not None and not best.f < last.f - ACTIVE_GAIN * max(abs(last.f), F_FLOOR)
-        active = set(l.id for l in sub.links)
-
-        def narrow(ids, active=active):
-            # The sub-circuit of the links not switched off, plus ``ids``.
-            keep = active | set(ids)
-            return Problem(without_links(spec, [l.id for l in spec.links if l.id not in keep]),
-                           prob.prices[[prob.layout.link_index[l.id] for l in spec.links if l.id in keep]])
-
+        narrow = _narrower(prob, {l.id for l in sub.links})
         woken = _wake_silent(prob, best, every=True, narrow=narrow)
         if woken is None:
             woken, used = _wake_streams(prob, best, opts, narrow=narrow)
@@ -230,6 +223,20 @@ def _active_rounds(prob: Problem, opts: Options, best, theta, rounds: int):
             break
         theta = woken
     return best, theta, iterations, part, tiny, rounds
+
+
+def _narrower(prob: Problem, active: set):
+    """``narrow(ids)`` for the wake-up tests of the active-set design: the
+    problem of the sub-circuit of ``prob`` on the links ``active`` plus
+    ``ids``, at ``prob``'s prices."""
+    spec = prob.spec
+
+    def narrow(ids):
+        keep = active | set(ids)
+        return Problem(without_links(spec, [l.id for l in spec.links if l.id not in keep]),
+                       prob.prices[[prob.layout.link_index[l.id] for l in spec.links if l.id in keep]])
+
+    return narrow
 
 
 def _carry_curvature(old: Problem, curvature, new: Problem, x0):
