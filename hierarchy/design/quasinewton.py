@@ -59,9 +59,14 @@ class Outcome:
 
 
 def minimise(fun, x0, *, max_iter=500, gtol=1e-8, ftol=1e-12, memory=12, unit=None, curvature=None,
-             callback=None, value=None) -> Outcome:
+             callback=None, value=None, precondition=None) -> Outcome:
     """Minimise ``fun(x) -> (f, grad)`` from ``x0``; ``f = inf`` marks a
     forbidden point (unstable loop), which the line search steps back from.
+
+    ``precondition(x, unit)``, if given, is asked for a first inverse
+    Hessian (dense, in the variables measured in ``unit``, or ``None``) when
+    the dense update starts with no curvature: the model starts there, and
+    falls back to it wherever it would start afresh.
 
     ``value(x)``, if given, must return the very ``f`` of ``fun(x)`` at less
     cost: the line search then tries its points by value and asks ``fun``
@@ -115,6 +120,8 @@ def minimise(fun, x0, *, max_iter=500, gtol=1e-8, ftol=1e-12, memory=12, unit=No
         # (cutting a long run into rounds must not make it start afresh).
         curv = curvature[0]
         curv.rescale(curvature[1] / unit)
+    if precondition is not None and isinstance(curv, _Dense) and not curv.ready:
+        curv.start(precondition(x0, unit))
     small_steps = 0
     for it in range(1, max_iter + 1):
         gnorm = float(np.max(np.abs(g)))
@@ -220,6 +227,11 @@ class _Dense:
 
     def __init__(self):
         self.reset()
+
+    def start(self, H0):
+        """Start from ``H0`` (a preconditioner), if not ``None``."""
+        if H0 is not None:
+            self.H = np.asfortranarray(np.triu(H0))
 
     def reset(self):
         self.H = None
