@@ -597,3 +597,38 @@ def test_a_failed_whole_circuit_polish_that_changes_nothing_keeps_the_converged_
     assert "whole" in calls
     assert active.converged, active.message
     assert "forced" not in active.message
+
+
+def test_the_preconditioner_blocks_are_the_hessian_blocks_of_the_objective():
+    # Each block of Problem.preconditioner is the inverse of that owner's
+    # block of the Hessian (in the solver's units, eigenvalues made
+    # positive), here against central second differences of the value alone,
+    # independent of the gradient it is built from (common practice, no
+    # source: the four-point formula for a mixed second derivative).
+    from hierarchy import load_spec
+    from pathlib import Path
+
+    spec = load_spec(Path(__file__).parents[1] / "specs" / "two-level.yaml")
+    prob = Problem(spec)
+    x = prob.pack(prob.informed_start())
+    u = prob.units(x)
+    P = prob.preconditioner(x, u)
+    h = 1e-4
+    f = lambda z: prob.value(x + z * u)
+    checked = 0
+    for owner, blocks in prob.by_owner.items():
+        at = np.concatenate([np.arange(sl.start, sl.stop) for _, sl, _ in blocks])
+        H = np.empty((len(at), len(at)))
+        for a, i in enumerate(at):
+            for b, j in enumerate(at):
+                e, d = np.zeros(len(x)), np.zeros(len(x))
+                e[i], d[j] = h, h
+                H[a, b] = (f(e + d) - f(e - d) - f(d - e) + f(-e - d)) / (4 * h * h)
+        w, V = np.linalg.eigh(0.5 * (H + H.T))
+        w = np.maximum(np.abs(w), 1e-6 * np.abs(w).max())
+        np.testing.assert_allclose(np.linalg.inv(P[np.ix_(at, at)]), (V * w) @ V.T, rtol=0,
+                                   atol=2e-4 * np.abs(w).max())
+        outside = np.setdiff1d(np.arange(len(x)), at)
+        assert not np.any(P[np.ix_(at, outside)])
+        checked += 1
+    assert checked == len(prob.by_owner) >= 4
