@@ -12,7 +12,7 @@ from hierarchy.loop.gains import Gains, with_pins
 from hierarchy.spec.model import Spec
 from hierarchy.design.problem import Problem
 from hierarchy.design.quasinewton import CONVERGED, DENSE_LIMIT, FAILED, ITERATION_LIMIT, STALL_GTOL, _relative, minimise
-from hierarchy.design.prices import CHUNK, _finish, _polish, _solve_prices
+from hierarchy.design.prices import CHUNK, _finish, _polish, _preconditioner, _solve_prices
 from hierarchy.design.result import BUDGET_TOL, BudgetUse, DesignResult, Options
 from hierarchy.design.silent import _link_powers, _receivers, _silence_floor
 
@@ -378,7 +378,7 @@ class _BlockDescent:
             else:
                 out = minimise(self.prob.value_and_grad, best.x, max_iter=min(block, left), gtol=opts.gtol,
                                ftol=opts.ftol, unit=self.prob.units(best.x), curvature=curvature,
-                               value=self.prob.value)
+                               value=self.prob.value, precondition=_preconditioner(self.prob))
                 used, curvature = out.iterations, out.curvature
             iterations += used
             left -= used

@@ -40,7 +40,7 @@ from hierarchy.design.silent import (
     _wake_streams,
 )
 
-__all__ = ['CHUNK', 'BALANCE_SNR', 'ACTIVE_GAINS', 'ACTIVE_ROUNDS', 'ACTIVE_GAIN', 'WHOLE_SETTLES',
+__all__ = ['CHUNK', 'BALANCE_SNR', 'PRECONDITION_GAINS', 'ACTIVE_GAINS', 'ACTIVE_ROUNDS', 'ACTIVE_GAIN', 'WHOLE_SETTLES',
            'design_prices',
            'raise_unstable_pins']
 
@@ -61,6 +61,9 @@ ACTIVE_ROUNDS = 12
 #: (relative), or the active-set design stops there: waking modes that buy
 #: 1e-8 of the objective each would otherwise take every round.
 ACTIVE_GAIN = 1e-7
+#: Free gains from which the dense quasi-Newton starts from the block-diagonal
+#: Hessian (:func:`_preconditioner`).
+PRECONDITION_GAINS = 300
 #: Whole-circuit polishes of the active-set design: after one that lowers
 #: the objective but is cut short (at 64 areas it woke a link in each of its
 #: 8 wake-up passes and ended at the iteration limit), the rounds start
@@ -299,7 +302,8 @@ def _polish(prob: Problem, x0, opts: Options, max_iter: int, wake: bool = True, 
     converged_f = np.inf  # objective at the last converged round
     while (descent := iterations - (prob.trial_iterations - trials0)) < max_iter:
         out = minimise(prob.value_and_grad, x, max_iter=min(CHUNK, max_iter - descent),
-                       gtol=opts.gtol, ftol=opts.ftol, unit=prob.units(x), curvature=curvature, value=prob.value)
+                       gtol=opts.gtol, ftol=opts.ftol, unit=prob.units(x), curvature=curvature, value=prob.value,
+                       precondition=_preconditioner(prob))
         iterations += out.iterations
         curvature = out.curvature
         # (Switching a link off may cost rounding, which the test allows.)
@@ -341,6 +345,15 @@ def _polish(prob: Problem, x0, opts: Options, max_iter: int, wake: bool = True, 
             curvature[0].forget(np.flatnonzero(moved != best.x))
         x = best.x if moved is None else moved
     return best, iterations
+
+
+def _preconditioner(prob: Problem):
+    """``minimise``'s ``precondition`` for ``prob``: the block-diagonal
+    Hessian (:meth:`~hierarchy.design.problem.Problem.preconditioner`) for
+    problems of ``PRECONDITION_GAINS`` to ``DENSE_LIMIT`` free gains, else
+    ``None`` (below, a scaled identity learns the curvature in fewer
+    evaluations than the blocks cost; above, the update is limited-memory)."""
+    return prob.preconditioner if PRECONDITION_GAINS <= prob.size <= DENSE_LIMIT else None
 
 
 def _balance_links(prob: Problem, best):
