@@ -196,3 +196,21 @@ def test_gains_file_errors_name_the_place(tmp_path):
     with pytest.raises(GainsError) as info:
         evaluate(spec, Gains())
     assert "a.M" in str(info.value)
+
+
+def test_a_loop_with_an_eigenvalue_at_exactly_minus_one_is_unstable_not_an_error():
+    # The Cayley transform of the Lyapunov solve needs T + I invertible; a
+    # trial point of the search (a long preconditioned step at 64 generated
+    # areas) landed where an area's memory had an eigenvalue of exactly -1.
+    from pathlib import Path
+
+    from hierarchy import load_spec
+    from hierarchy.design.problem import Problem
+
+    prob = Problem(load_spec(Path(__file__).parents[1] / "specs" / "single-loop.yaml"))
+    x = prob.pack(prob.informed_start())
+    for blocks in prob.by_owner.values():
+        for name, sl, shape in blocks:
+            x[sl] = -np.eye(shape[0]).ravel() if name == "M" else 0.0
+    assert prob.value(x) == np.inf
+    assert prob.value_and_grad(x) == (np.inf, None)

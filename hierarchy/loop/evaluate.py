@@ -159,6 +159,12 @@ class _Schur:
             raise np.linalg.LinAlgError(f"the Schur form did not converge (LAPACK dgees info {info})")
         self.U = U
         self.radius = float(np.hypot(wr, wi).max()) if n else 0.0
+        if self.radius >= 1.0:
+            # Unstable: no stationary regime to solve for, and with an
+            # eigenvalue at exactly -1 (a long trial step can land there)
+            # T + I is singular.
+            self.inv = self.Tc = None
+            return
         self.inv = np.linalg.solve(T + np.eye(n), np.eye(n))
         Tc = self.inv @ (T - np.eye(n))
         below = np.tril(np.ones((n, n), dtype=bool), -1)
