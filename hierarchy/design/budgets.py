@@ -16,7 +16,7 @@ from hierarchy.design.prices import CHUNK, _finish, _polish, _preconditioner, _s
 from hierarchy.design.result import BUDGET_TOL, BudgetUse, DesignResult, Options
 from hierarchy.design.silent import _link_powers, _receivers, _silence_floor
 
-__all__ = ['design_budgets', 'BLOCK_ITER', 'BLOCK_SETTLED', 'BUDGET_ITER', 'LIMITED_BUDGET_ITER', 'SPREAD', 'COARSE_TOL', 'COARSE_STEPS', 'IDLE_STEPS', 'MU_SETTLED', 'BUDGET_FTOL', 'ALPHA_MAX']
+__all__ = ['design_budgets', 'BLOCK_ITER', 'BLOCK_SETTLED', 'BUDGET_ITER', 'LIMITED_BUDGET_ITER', 'SPREAD', 'COARSE_TOL', 'COARSE_STEPS', 'IDLE_STEPS', 'MU_SETTLED', 'BUDGET_FTOL']
 
 
 def design_budgets(spec: Spec, options: Options | None = None, start: Gains | None = None) -> DesignResult:
@@ -167,8 +167,6 @@ MU_SETTLED = 5e-3
 #: (8e-8) and the shadow prices agree with finite differences to 4e-5, in
 #: the same time.
 BUDGET_FTOL = 1e-14
-#: Longest step of a multiplier, in multiples of the allocation model's.
-ALPHA_MAX = 64.0
 
 
 class _BlockDescent:
@@ -330,13 +328,7 @@ class _BlockDescent:
             ok = moved & (np.abs(promised) > 0) & np.isfinite(actual)
             ratio = np.where(ok, actual / np.where(ok, promised, 1.0), 1.0)
             good = ok & (ratio > 0.05)
-            self._alpha = np.where(good, np.clip(self._alpha / np.where(good, ratio, 1.0), 0.1, ALPHA_MAX),
-                                   self._alpha)
-            # A miss that did not answer at all (the design stayed stationary
-            # to gtol at the new prices): the step was below what the gains
-            # resolve, so lengthen it.
-            deaf = ok & ~good
-            self._alpha = np.where(deaf, np.minimum(4.0 * self._alpha, ALPHA_MAX), self._alpha)
+            self._alpha = np.where(good, np.clip(self._alpha / np.where(good, ratio, 1.0), 0.1, 2.0), self._alpha)
         step = np.where(self.mu > 0, self._alpha, 1.0) * (mu - self.mu)
         new = np.maximum(self.mu + step, 0.0)
         new[mu == 0] = 0.0
