@@ -281,7 +281,7 @@ def _outcome(prob: Problem, theta, like=None) -> Outcome:
     return Outcome(theta, f, grel, like.iterations, like.status, like.message)
 
 def _polish(prob: Problem, x0, opts: Options, max_iter: int, wake: bool = True, settled: float = 0.0,
-            curvature=None):
+            curvature=None, precondition: bool = True):
     """Minimise from ``x0`` in rounds of at most ``CHUNK`` iterations. Between
     rounds, switch off links that are fading away, rebalance high-SNR links
     once a round ended on its own, and try to wake silent links or modes
@@ -295,7 +295,9 @@ def _polish(prob: Problem, x0, opts: Options, max_iter: int, wake: bool = True, 
     bound (``STREAM_ITER`` per stream, ``MAX_STREAMS`` streams, at most
     ``max_iter`` per pass, at most 8 passes), so that a test pass cannot use
     up the descent's allowance and leave the design unconverged for want of
-    iterations (at 16 areas one pass took 3,000 of the 3,180 iterations)."""
+    iterations (at 16 areas one pass took 3,000 of the 3,180 iterations).
+    With ``precondition`` (the default) a fresh curvature model starts from
+    the block-diagonal Hessian (:func:`_preconditioner`)."""
     best, x, iterations, wakes, balances = None, x0, 0, 0, 0
     trials0 = prob.trial_iterations  # stream trials count there, not against the descent
     last = prob.value(x0) if settled else None
@@ -303,7 +305,7 @@ def _polish(prob: Problem, x0, opts: Options, max_iter: int, wake: bool = True, 
     while (descent := iterations - (prob.trial_iterations - trials0)) < max_iter:
         out = minimise(prob.value_and_grad, x, max_iter=min(CHUNK, max_iter - descent),
                        gtol=opts.gtol, ftol=opts.ftol, unit=prob.units(x), curvature=curvature, value=prob.value,
-                       precondition=_preconditioner(prob))
+                       precondition=_preconditioner(prob) if precondition else None)
         iterations += out.iterations
         curvature = out.curvature
         # (Switching a link off may cost rounding, which the test allows.)
