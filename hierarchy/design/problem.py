@@ -38,8 +38,8 @@ PRECONDITION_STEP = 1e-5
 PRECONDITION_FLOOR = 1e-6
 #: A preconditioner asked for again within this many evaluations per free
 #: gain of the last one is that one (in the new units): it costs one
-#: gradient per gain, and the budget form's block steps, each a fresh start,
-#: would otherwise pay it at every step.
+#: gradient per gain, and polish rounds that each start afresh would
+#: otherwise pay it every round.
 PRECONDITION_REUSE = 3
 
 #: Evaluations made by every :class:`Problem` of this process, for progress
@@ -248,7 +248,7 @@ class Problem:
         last = getattr(self, "_preconditioner", None)
         if last is not None and done - last[0] < PRECONDITION_REUSE * n:
             return last[1] / np.outer(unit, unit)
-        f, g0 = self.value_and_grad(theta)
+        g0 = self.value_and_grad(theta)[1]
         if g0 is None:
             return None
         H0 = np.zeros((n, n))

@@ -65,8 +65,8 @@ def minimise(fun, x0, *, max_iter=500, gtol=1e-8, ftol=1e-12, memory=12, unit=No
 
     ``precondition(x, unit)``, if given, is asked for a first inverse
     Hessian (dense, in the variables measured in ``unit``, or ``None``) when
-    the dense update starts with no curvature: the model starts there, and
-    falls back to it wherever it would start afresh.
+    the dense update starts with no curvature: the model starts there (a
+    reset later in the run starts from a scaled identity, as without it).
 
     ``value(x)``, if given, must return the very ``f`` of ``fun(x)`` at less
     cost: the line search then tries its points by value and asks ``fun``
