@@ -158,3 +158,14 @@ def test_carried_curvature_is_not_replaced_by_the_preconditioner():
     minimise(rosenbrock, first.x, max_iter=5, unit=np.ones(2), curvature=first.curvature,
              precondition=lambda x, u: asked.append(1) or np.eye(2))
     assert not asked
+
+
+def test_an_overflowing_preconditioner_does_not_hang_the_line_search():
+    # A model whose direction overflows (a first inverse Hessian of 1e307,
+    # as a block with no curvature once gave) must fall back to the gradient:
+    # a line search along an infinite direction never reaches its end test.
+    fun = lambda x: (float(x @ x + x[0]), 2 * x + np.array([1.0, 0.0]))
+    out = minimise(fun, np.array([300.0, -200.0]), max_iter=200, unit=np.ones(2),
+                   precondition=lambda x, u: np.eye(2) * 1e307)
+    assert out.status == CONVERGED
+    np.testing.assert_allclose(out.x, [-0.5, 0.0], atol=1e-6)

@@ -134,7 +134,9 @@ def minimise(fun, x0, *, max_iter=500, gtol=1e-8, ftol=1e-12, memory=12, unit=No
         # Decrease the quasi-Newton model still promises (half the squared
         # Newton decrement, Boyd & Vandenberghe, Convex Optimization, 9.5.1).
         model_gain = -0.5 * slope if curv.ready and slope < 0 else np.inf
-        if slope >= 0:
+        if not slope < 0 or not np.all(np.isfinite(d)):
+            # (An overflowed model gives a non-finite direction, and a line
+            # search along it would never reach its end test.)
             curv.reset()
             d, slope = -g, -float(g @ g)
         step = 1.0 if curv.ready else min(1.0, 1.0 / max(gnorm, 1e-12))
