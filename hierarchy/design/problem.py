@@ -233,7 +233,7 @@ class Problem:
         per area (its ``M``), each from forward differences of the exact
         gradient (one gradient per free gain), its eigenvalues made positive
         (absolute values, at least ``PRECONDITION_FLOOR`` of the block's
-        largest). ``None`` where a difference leaves the stable set. Asked
+        largest, or of the median block's largest if that is more). ``None`` where a difference leaves the stable set. Asked
         again within ``PRECONDITION_REUSE`` evaluations per gain, it returns
         the last one.
 
@@ -251,7 +251,7 @@ class Problem:
         g0 = self.value_and_grad(theta)[1]
         if g0 is None:
             return None
-        H0 = np.zeros((n, n))
+        parts = []
         for owner, blocks in self.by_owner.items():
             at = np.concatenate([np.arange(sl.start, sl.stop) for _, sl, _ in blocks])
             if not len(at):
@@ -265,8 +265,15 @@ class Problem:
                     return None
                 B[:, k] = (g[at] - g0[at]) * unit[at] / PRECONDITION_STEP
             w, V = np.linalg.eigh(0.5 * (B + B.T))
-            w = np.abs(w)
-            w = np.maximum(w, PRECONDITION_FLOOR * max(float(w.max()), 1e-300))
+            parts.append((at, np.abs(w), V))
+        # A block the objective does not feel (the gains of a link whose
+        # partner is switched off) is floored against a typical block's
+        # curvature, not its own zero: a floor of 1e-306 gave steps of 1e300
+        # and an overflowed model at 32 generated areas.
+        typical = float(np.median([w.max() for _, w, _ in parts])) if parts else 1.0
+        H0 = np.zeros((n, n))
+        for at, w, V in parts:
+            w = np.maximum(w, PRECONDITION_FLOOR * max(float(w.max()), typical, 1e-300))
             H0[np.ix_(at, at)] = (V / w) @ V.T
         self._preconditioner = (self.evaluations + self.values, H0 * np.outer(unit, unit))
         return H0
